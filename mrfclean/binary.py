@@ -22,8 +22,8 @@ NOISES = ("auto", "flip", "gaussian")
 
 #: Defaults chosen with scripts/bench_binary.py (see README, "Benchmarks").
 DEFAULT_ANNEAL_SWEEPS = 300
-DEFAULT_BURN_IN = 50
-DEFAULT_SAMPLES = 200
+DEFAULT_BURN_IN = 100
+DEFAULT_SAMPLES = 400
 DEFAULT_CHAINS = 2
 
 

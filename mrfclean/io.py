@@ -245,6 +245,9 @@ def atomic_output(path, *, overwrite=False):
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".part" + path.suffix)
     os.close(fd)
     tmp = Path(tmp)
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; results should read like any file
     try:
         yield tmp
         with open(tmp, "rb+") as fh:
