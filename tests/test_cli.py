@@ -1,0 +1,183 @@
+"""The command line: results written safely, bad input refused with one clear line.
+
+Images here are built in the test (skimage.data.binary_blobs, which scikit-image
+ships as a generator, plus seeded flips) or are malformed files made on purpose.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import tifffile
+from PIL import Image
+from skimage.data import binary_blobs
+
+from mrfclean.cli import main
+
+FAST = ["--burn-in", "10", "--samples", "30", "--sweeps", "40"]
+
+
+def _noisy_blobs(n=64, rate=0.1, seed=0):
+    clean = binary_blobs(n, blob_size_fraction=0.2, volume_fraction=0.4, rng=seed)
+    flips = np.random.default_rng(seed).random(clean.shape) < rate
+    return clean, clean ^ flips
+
+
+@pytest.fixture
+def noisy_png(tmp_path):
+    clean, noisy = _noisy_blobs()
+    path = tmp_path / "in" / "blobs.png"
+    path.parent.mkdir()
+    Image.fromarray(noisy.astype(np.uint8) * 255).save(path)
+    return path
+
+
+def _one_line_error(capsys):
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1, err
+    assert "Traceback" not in err[0]
+    return err[0]
+
+
+def test_clean_writes_result_with_same_dtype_and_levels(noisy_png, tmp_path, capsys):
+    before = noisy_png.read_bytes()
+    rc = main(["clean", str(noisy_png), "-o", str(tmp_path / "out"), *FAST])
+    assert rc == 0
+    out = tmp_path / "out" / "blobs.png"
+    assert str(out) in capsys.readouterr().out
+    a = np.array(Image.open(out))
+    assert a.dtype == np.uint8 and set(np.unique(a)) <= {0, 255}
+    assert noisy_png.read_bytes() == before  # input untouched
+
+
+def test_maps_are_float32_tiffs(noisy_png, tmp_path):
+    rc = main(["clean", str(noisy_png), "-o", str(tmp_path / "out"), "--maps", *FAST])
+    assert rc == 0
+    p = tifffile.imread(tmp_path / "out" / "blobs_p_on.tif")
+    sd = tifffile.imread(tmp_path / "out" / "blobs_std.tif")
+    assert p.dtype == np.float32 and sd.dtype == np.float32
+    assert p.min() >= 0 and p.max() <= 1
+    # std of a Bernoulli indicator: sqrt(p (1 - p)), a handbook identity
+    np.testing.assert_allclose(sd, np.sqrt(p.astype(np.float64) * (1 - p)), atol=1e-6)
+
+
+def test_same_seed_same_bytes(noisy_png, tmp_path):
+    for name in ("a", "b"):
+        assert main(["clean", str(noisy_png), "-o", str(tmp_path / name), "--seed", "5", *FAST]) == 0
+    a = np.array(Image.open(tmp_path / "a" / "blobs.png"))
+    b = np.array(Image.open(tmp_path / "b" / "blobs.png"))
+    assert np.array_equal(a, b)
+
+
+def test_refuses_to_overwrite_input(noisy_png, capsys):
+    before = noisy_png.read_bytes()
+    rc = main(["clean", str(noisy_png), "-o", str(noisy_png.parent), *FAST])
+    assert rc != 0
+    line = _one_line_error(capsys)
+    assert line.startswith(str(noisy_png)) and "overwrite the input" in line
+    assert noisy_png.read_bytes() == before
+
+
+def test_refuses_to_replace_existing_output(noisy_png, tmp_path, capsys):
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "blobs.png").write_bytes(b"user's own file")
+    rc = main(["clean", str(noisy_png), "-o", str(out), *FAST])
+    assert rc != 0
+    assert "already exists" in _one_line_error(capsys)
+    assert (out / "blobs.png").read_bytes() == b"user's own file"
+
+
+def _write_bad(tmp_path, kind):
+    p = tmp_path / f"bad_{kind}.tif"
+    if kind == "nan":
+        a = np.zeros((8, 8), np.float32)
+        a[3, 3] = np.nan
+        tifffile.imwrite(p, a)
+    elif kind == "inf":
+        a = np.zeros((8, 8), np.float32)
+        a[0, 0] = np.inf
+        tifffile.imwrite(p, a)
+    elif kind == "rgb":
+        p = tmp_path / "bad_rgb.png"
+        Image.fromarray(np.zeros((8, 8, 3), np.uint8)).save(p)
+    elif kind == "truncated":
+        p = tmp_path / "bad_truncated.png"
+        Image.fromarray((np.random.default_rng(0).random((64, 64)) * 255).astype(np.uint8)).save(p)
+        p.write_bytes(p.read_bytes()[:200])
+    elif kind == "garbage":
+        p.write_bytes(b"this is not an image at all")
+    elif kind == "empty":
+        with pytest.warns(UserWarning, match="zero-size"):  # tifffile says the file is odd
+            tifffile.imwrite(p, np.zeros((0, 5), np.uint8))
+    elif kind == "missing":
+        p = tmp_path / "nowhere.png"
+    elif kind == "type":
+        p = tmp_path / "notes.txt"
+        p.write_text("hello")
+    return p
+
+
+@pytest.mark.parametrize("kind, words", [
+    ("nan", "NaN or infinite"), ("inf", "NaN or infinite"), ("rgb", "colour image"),
+    ("truncated", "cannot read"), ("garbage", "cannot read"), ("empty", "empty"),
+    ("missing", "no such file"), ("type", "unsupported file type"),
+])
+def test_bad_input_gets_one_line_and_nonzero_exit(tmp_path, capsys, kind, words):
+    p = _write_bad(tmp_path, kind)
+    rc = main(["clean", str(p), "-o", str(tmp_path / "out"), *FAST])
+    assert rc != 0
+    line = _one_line_error(capsys)
+    assert line.startswith(f"{p}: ") and words in line, line
+    assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())
+
+
+def test_rgb_with_explicit_conversion_is_cleaned(tmp_path):
+    _, noisy = _noisy_blobs()
+    rgb = np.repeat((noisy.astype(np.uint8) * 255)[..., None], 3, axis=2)
+    p = tmp_path / "rgb.png"
+    Image.fromarray(rgb).save(p)
+    assert main(["clean", str(p), "-o", str(tmp_path / "out"), "--colour", "luminance", *FAST]) == 0
+    assert np.array(Image.open(tmp_path / "out" / "rgb.png")).ndim == 2
+
+
+def test_batch_goes_on_after_a_failure(noisy_png, tmp_path, capsys):
+    bad = _write_bad(tmp_path, "garbage")
+    rc = main(["clean", str(bad), str(noisy_png), "-o", str(tmp_path / "out"), *FAST])
+    assert rc != 0
+    assert (tmp_path / "out" / "blobs.png").exists()
+
+
+@pytest.mark.parametrize("shape", [(1, 1), (5, 7)])
+def test_constant_and_tiny_images_work(tmp_path, shape):
+    p = tmp_path / "flat.tif"
+    tifffile.imwrite(p, np.full(shape, 7, np.uint16))
+    assert main(["clean", str(p), "-o", str(tmp_path / "out"), *FAST]) == 0
+    out = tifffile.imread(tmp_path / "out" / "flat.tif")
+    assert out.dtype == np.uint16 and out.shape == shape and np.all(out == 7)
+
+
+def test_score_prints_table(tmp_path, capsys):
+    clean, noisy = _noisy_blobs()
+    a, b = tmp_path / "a.png", tmp_path / "b.png"
+    Image.fromarray(clean.astype(np.uint8) * 255).save(a)
+    Image.fromarray(noisy.astype(np.uint8) * 255).save(b)
+    assert main(["score", str(b), str(a)]) == 0
+    out = capsys.readouterr().out
+    assert "error_rate" in out and "dice" in out
+    # error rate of the noisy image is the flip fraction, computed directly here
+    assert f"{np.mean(clean != noisy):.4f}" in out
+
+
+def test_score_shape_mismatch_is_one_line(tmp_path, capsys):
+    a, b = tmp_path / "a.png", tmp_path / "b.png"
+    Image.fromarray(np.zeros((8, 8), np.uint8)).save(a)
+    Image.fromarray(np.zeros((8, 9), np.uint8)).save(b)
+    assert main(["score", str(a), str(b)]) != 0
+    assert "shape" in _one_line_error(capsys)
+
+
+def test_usage_errors_exit_2(capsys):
+    with pytest.raises(SystemExit) as e:
+        main(["clean", "x.png", "-o", "out", "--chains", "0"])
+    assert e.value.code == 2
