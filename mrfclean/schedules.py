@@ -58,14 +58,19 @@ class Constant(Schedule):
 
 
 @dataclass(frozen=True)
-class Geometric(Schedule):
-    """``T_k = start * (end / start) ** (k / (n - 1))``: exponential cooling."""
+class _Cooling(Schedule):
+    """A schedule from a start to an end temperature (shared checks)."""
 
     start: float = 3.0
     end: float = 0.05
 
     def __post_init__(self):
         _check_positive(start=self.start, end=self.end)
+
+
+@dataclass(frozen=True)
+class Geometric(_Cooling):
+    """``T_k = start * (end / start) ** (k / (n - 1))``: exponential cooling."""
 
     def temperature(self, k, n):
         if n <= 1:
@@ -74,14 +79,8 @@ class Geometric(Schedule):
 
 
 @dataclass(frozen=True)
-class Linear(Schedule):
+class Linear(_Cooling):
     """``T_k = start + (end - start) * k / (n - 1)``."""
-
-    start: float = 3.0
-    end: float = 0.05
-
-    def __post_init__(self):
-        _check_positive(start=self.start, end=self.end)
 
     def temperature(self, k, n):
         if n <= 1:
@@ -90,19 +89,13 @@ class Linear(Schedule):
 
 
 @dataclass(frozen=True)
-class Logarithmic(Schedule):
+class Logarithmic(_Cooling):
     """``T_k = c / log(2 + k)`` with ``c = start * log 2``, floored at ``end``.
 
     The schedule of Geman & Geman (1984) under which annealing provably reaches
     the global minimum for ``c`` large enough; it cools slowly, so in practice it
     is cut off at ``end``.
     """
-
-    start: float = 3.0
-    end: float = 0.05
-
-    def __post_init__(self):
-        _check_positive(start=self.start, end=self.end)
 
     def temperature(self, k, n):
         return float(max(self.start * math.log(2.0) / math.log(2.0 + k), self.end))

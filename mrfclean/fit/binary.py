@@ -31,7 +31,7 @@ import numpy as np
 from scipy import optimize
 
 from .. import kernels
-from ..models.binary import BinaryModel, FlipNoise, TwoLevelGaussian
+from ..models.binary import BinaryModel, FlipNoise, TwoLevelGaussian, neighbour_sums
 
 #: Bounds of estimated parameters (an all-equal image would otherwise drive the
 #: coupling to infinity and the flip rate to zero).
@@ -59,18 +59,7 @@ class CouplingStats:
         s = np.asarray(spins, dtype=np.int8)
         s = s.reshape((1, *s.shape)) if s.ndim == 2 else s
         s16 = s.astype(np.int16)
-        n = np.zeros_like(s16)
-        if boundary == "periodic":
-            for ax in (1, 2):
-                n += np.roll(s16, 1, axis=ax) + np.roll(s16, -1, axis=ax)
-        else:
-            n[:, 1:, :] += s16[:, :-1, :]
-            n[:, :-1, :] += s16[:, 1:, :]
-            n[:, :, 1:] += s16[:, :, :-1]
-            n[:, :, :-1] += s16[:, :, 1:]
-        m = np.zeros_like(s16)
-        m[1:] += s16[:-1]
-        m[:-1] += s16[1:]
+        n, m = neighbour_sums(s16, periodic=boundary == "periodic")
         a = (s16 * n + 4).ravel()
         c = (s16 * m + 2).ravel()
         self.counts += np.bincount(a * 5 + c, minlength=45).reshape(9, 5)

@@ -42,6 +42,28 @@ from ..lattice import Grid
 from ..sampler import START_SWEEP, ChainModel, Tally
 
 
+def neighbour_sums(spins, *, periodic=False):
+    """In-plane and between-plane neighbour sums of a ``(Z, H, W)`` array (numpy, any dtype).
+
+    Returns ``(n, nz)``: the sum over the 4 in-plane neighbours (wrapped when
+    ``periodic``) and over the 2 z neighbours (free boundary), 0 outside.
+    """
+    s = np.asarray(spins)
+    n = np.zeros_like(s)
+    if periodic:
+        for ax in (1, 2):
+            n += np.roll(s, 1, axis=ax) + np.roll(s, -1, axis=ax)
+    else:
+        n[:, 1:, :] += s[:, :-1, :]
+        n[:, :-1, :] += s[:, 1:, :]
+        n[:, :, 1:] += s[:, :, :-1]
+        n[:, :, :-1] += s[:, :, 1:]
+    nz = np.zeros_like(s)
+    nz[1:] += s[:-1]
+    nz[:-1] += s[1:]
+    return n, nz
+
+
 def _check_rate(p):
     if not (isinstance(p, (int, float)) and 0.0 < p < 0.5):
         raise ValueError(f"flip rate must be in (0, 0.5), got {p!r}")
@@ -227,19 +249,7 @@ class BinaryModel(ChainModel):
 
     def local_field_of(self, spins) -> np.ndarray:
         """``F_i = beta (neighbour sum) + beta_z (z neighbour sum) + h_i`` for every site."""
-        s = self._as_spins(spins).astype(np.float64)
-        n = np.zeros_like(s)
-        if self.grid.periodic:
-            for ax in (1, 2):
-                n += np.roll(s, 1, axis=ax) + np.roll(s, -1, axis=ax)
-        else:
-            n[:, 1:, :] += s[:, :-1, :]
-            n[:, :-1, :] += s[:, 1:, :]
-            n[:, :, 1:] += s[:, :, :-1]
-            n[:, :, :-1] += s[:, :, 1:]
-        nz = np.zeros_like(s)
-        nz[1:] += s[:-1]
-        nz[:-1] += s[1:]
+        n, nz = neighbour_sums(self._as_spins(spins).astype(np.float64), periodic=self.grid.periodic)
         return self.coupling * n + self.coupling_z * nz + self.h.astype(np.float64)
 
     def describe(self):
