@@ -19,6 +19,8 @@ from . import levels as lv
 from .binary import clean_binary
 from .estimates import CleanResult
 from .schedules import make_schedule
+from .stacks import STACK_MODES
+from .tiles import MIN_TILE
 
 KINDS = ("auto", "binary", "grey")
 METHODS = ("auto", "map", "mpm", "mean")
@@ -55,6 +57,15 @@ class Settings:
         With MAP, also sample the posterior for the mean and std maps.
     certify : bool
         Binary MAP: also compute the exact MAP energy by minimum cut.
+    stack : {"volume", "planes"}
+        A stack is one 3-D volume (6 neighbours, z coupling ``coupling_z``;
+        ``"auto"`` follows the voxel size, see :mod:`mrfclean.stacks`) or a
+        set of planes cleaned one by one.
+    tile : int or None
+        Binary: clean in square tiles of this many pixels, reading and writing
+        band by band (memory bounded by a band of tile rows plus one byte per
+        pixel of state; results identical to an untiled run; see
+        :mod:`mrfclean.tiles`).
     """
 
     kind: str = "auto"
@@ -76,10 +87,16 @@ class Settings:
     boundary: str = "free"
     uncertainty: bool = False
     certify: bool = False
+    stack: str = "volume"
+    tile: int | None = None
 
     def __post_init__(self):
         if self.kind not in KINDS:
             raise ValueError(f"kind must be one of {KINDS}, got {self.kind!r}")
+        if self.stack not in STACK_MODES:
+            raise ValueError(f"stack must be one of {STACK_MODES}, got {self.stack!r}")
+        if self.tile is not None and not (isinstance(self.tile, int) and self.tile >= MIN_TILE):
+            raise ValueError(f"tile must be a whole number of at least {MIN_TILE} pixels, got {self.tile!r}")
         if self.method not in METHODS:
             raise ValueError(f"method must be one of {METHODS}, got {self.method!r}")
 
@@ -97,7 +114,8 @@ def choose_kind(image, kind="auto") -> str:
     return "binary" if lv.is_bilevel(image) else "grey"
 
 
-def clean(image, *, settings: Settings | None = None, rng=None, progress=False) -> CleanResult:
+def clean(image, *, settings: Settings | None = None, rng=None, progress=False,
+          voxel_size=None) -> CleanResult:
     """Clean one image or stack with the binary or greyscale model.
 
     Parameters
@@ -108,6 +126,8 @@ def clean(image, *, settings: Settings | None = None, rng=None, progress=False) 
         Defaults to ``Settings()``: everything automatic.
     rng : int or numpy.random.Generator, optional
     progress : bool
+    voxel_size : (dz, dy, dx), optional
+        Physical voxel size of a stack (sets the default z coupling).
 
     Returns
     -------
@@ -122,11 +142,29 @@ def clean(image, *, settings: Settings | None = None, rng=None, progress=False) 
     """
     s = settings or Settings()
     kind = choose_kind(image, s.kind)
+    stack = np.ndim(image) == 3 and np.shape(image)[0] > 1
+    if stack and s.stack == "planes":
+        from .stacks import clean_planes
+
+        one = s.replace(kind=kind, stack="volume")
+        return clean_planes(image, lambda plane, gen: clean(plane, settings=one, rng=gen,
+                                                            progress=progress), rng=rng)
+    if s.tile is not None:
+        from .tiles import clean_tiled
+
+        return clean_tiled(image, settings=s.replace(kind=kind), voxel_size=voxel_size, rng=rng,
+                           progress=progress)
     if kind == "binary":
         method = "mpm" if s.method == "auto" else s.method
         if method == "mean":
             method = "mpm"  # the posterior mean of a binary field, thresholded, is the MPM
-        return clean_binary(
+        binary = clean_binary
+        if stack:
+            from functools import partial
+
+            from .stacks import clean_volume_binary
+            binary = partial(clean_volume_binary, voxel_size=voxel_size)
+        return binary(
             image, method=method, noise=s.noise if s.noise in ("auto", "flip", "gaussian") else "auto",
             coupling=s.coupling, coupling_z=s.coupling_z, flip_rate=s.flip_rate, levels=s.levels,
             schedule=make_schedule(s.schedule, start=s.t_start, end=s.t_end), sweeps=s.sweeps,
@@ -181,6 +219,12 @@ def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps
     """
     t0 = time.perf_counter()
     settings = settings or Settings()
+    if settings.tile is not None:
+        from .tiles import clean_file_tiled
+
+        return clean_file_tiled(path, outdir, settings=settings, rng=rng, maps=maps, colour=colour,
+                                overwrite=overwrite, max_pixels=max_pixels, progress=progress,
+                                output=output)
     loaded = io.read_image(path, colour=colour, max_pixels=max_pixels)
     kind = choose_kind(loaded.array, settings.kind)
     out, map_paths = output_paths(path, outdir, kind=kind)
@@ -196,7 +240,8 @@ def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps
     if want_maps and kind == "binary":
         s = s.replace(uncertainty=True)
     try:
-        result = clean(loaded.array, settings=s, rng=rng, progress=progress)
+        result = clean(loaded.array, settings=s, rng=rng, progress=progress,
+                       voxel_size=io.voxel_size(loaded.metadata))
     except ValueError as exc:
         raise io.InputError(path, str(exc)) from None
     written = {}
