@@ -1,41 +1,65 @@
-"""Command line: ``mrfclean clean`` and ``mrfclean score``.
+"""Command line: ``mrfclean clean``, ``mrfclean score`` and ``mrfclean report``.
 
-A thin layer: it parses arguments, calls :func:`mrfclean.clean.clean_file` and
-:func:`mrfclean.metrics.score`, and reports one line per file.  Problems with a
-file are printed as ``path: what went wrong`` on stderr and make the exit
-status non-zero; ``--debug`` shows the traceback instead.
+A thin layer: it parses arguments, merges them with a config file
+(:mod:`mrfclean.config`), calls :func:`mrfclean.batch.run_batch`,
+:func:`mrfclean.batch.score_folders` or :func:`mrfclean.report.batch_report`,
+and prints.  Problems with a file are printed as ``path: what went wrong`` on
+stderr, one line each, and make the exit status non-zero; ``--debug`` shows
+tracebacks too.
 """
 
 from __future__ import annotations
 
 import argparse
+import signal
 import sys
-import warnings
 from pathlib import Path
 
 from . import __version__, io
-from .diagnostics import ChainsDisagree
-from .clean import KINDS, METHODS, Settings, clean_file
+from .clean import KINDS, METHODS
 from .schedules import SCHEDULES
 
-EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
+EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130
 
 CLEAN_EPILOG = """\
 examples:
   mrfclean clean sample_images/colony_noisy.png -o cleaned/
-  mrfclean clean scan.tif -o out/ --estimate map --certify --seed 7
-  mrfclean clean scan.tif -o out/ --coupling 0.9 --flip-rate 0.1 --maps
+  mrfclean clean scans/ -o cleaned/ --recursive --workers 4
+  mrfclean clean 'scans/**/*.tif' -o cleaned/ --recursive --reference refs/ --report
+  mrfclean clean scans/ -o cleaned/ --config run.toml --coupling 0.9
+  mrfclean clean scans/ -o cleaned/ --scheduler tcp://10.0.0.5:8786
 
-Everything not given is estimated from the image. Inputs are never modified;
-existing outputs are not replaced unless --overwrite is given.
+Folders give their TIFF and PNG files; the output folder mirrors the input tree.
+Everything not given is estimated from each image. Inputs are never modified;
+existing outputs are not replaced unless --overwrite is given. OUTDIR gets a
+manifest (manifest.jsonl) and a summary (summary.csv); running the same command
+again skips the images already done and does the rest.
 """
 
 SCORE_EPILOG = """\
-example:
+examples:
   mrfclean score cleaned/colony_noisy.png sample_images/colony_clean.png
+  mrfclean score cleaned/ refs/ --recursive --csv scores.csv
+
+Folders are matched by relative path (or by a unique file name).
 """
 
+REPORT_EPILOG = """\
+example:
+  mrfclean report cleaned/            # writes cleaned/report.html
+"""
 
+#: Command-line names of the BatchOptions fields.  An option whose ``dest`` is the
+#: name of a Settings field (e.g. ``--coupling`` -> ``coupling``) sets that field;
+#: adding a setting to the command line needs nothing more than its ``add_argument``.
+BATCH_FLAGS = ("workers", "threads", "recursive", "maps", "colour", "max_pixels", "overwrite",
+               "redo", "seed", "reference", "data_range", "report", "progress", "sweep_bar",
+               "scheduler", "local_cluster")
+
+
+# ---------------------------------------------------------------------------
+# argument types
+# ---------------------------------------------------------------------------
 def _auto_or_float(text):
     if text == "auto":
         return "auto"
@@ -65,52 +89,106 @@ def _count(text):
     return v
 
 
+def _positive_float(text):
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not v > 0:
+        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
+    return v
+
+
+# ---------------------------------------------------------------------------
+# option groups (defaults are None: "not given", so a config file can set them)
+# ---------------------------------------------------------------------------
 def add_model_options(p):
     """Options shared by every command that cleans (model, sampler, seed)."""
     m = p.add_argument_group("model")
-    m.add_argument("--kind", choices=KINDS, default="auto",
-                   help="binary or grey model (default: binary for two-level images)")
-    m.add_argument("--estimate", dest="method", choices=METHODS, default="auto",
+    m.add_argument("--kind", choices=KINDS,
+                   help="binary or grey model (default auto: binary for two-level images)")
+    m.add_argument("--estimate", dest="method", choices=METHODS,
                    help="map: most probable image; mpm: each pixel's most probable level; "
                         "mean: posterior mean (default: mpm for binary, mean for grey)")
-    m.add_argument("--noise", default="auto",
-                   choices=("auto", "flip", "gaussian", "poisson-gaussian"),
+    m.add_argument("--noise", choices=("auto", "flip", "gaussian", "poisson-gaussian"),
                    help="noise model (default: flip for two-level images, gaussian otherwise)")
-    m.add_argument("--coupling", type=_auto_or_float, default="auto", metavar="BETA",
+    m.add_argument("--coupling", type=_auto_or_float, metavar="BETA",
                    help="pixel coupling of the binary prior (default: estimated)")
-    m.add_argument("--coupling-z", type=_auto_or_float, default="auto", metavar="BETA",
+    m.add_argument("--coupling-z", type=_auto_or_float, metavar="BETA",
                    help="coupling between planes of a stack (default: estimated)")
-    m.add_argument("--flip-rate", type=_auto_or_float, default="auto", metavar="P",
+    m.add_argument("--flip-rate", type=_auto_or_float, metavar="P",
                    help="probability that a pixel was flipped (binary, default: estimated)")
     m.add_argument("--levels", type=float, nargs=3, metavar=("LOW", "HIGH", "SIGMA"),
                    help="two-level Gaussian data term for grey scans of bi-level specimens")
-    m.add_argument("--sigma", type=_auto_or_float, default="auto",
+    m.add_argument("--sigma", type=_auto_or_float,
                    help="grey: noise standard deviation in image units (default: estimated)")
-    m.add_argument("--strength", type=_auto_or_float, default="auto",
+    m.add_argument("--strength", type=_auto_or_float,
                    help="grey: prior strength multiplier (default: chosen by SURE)")
-    m.add_argument("--boundary", choices=("free", "periodic"), default="free")
+    m.add_argument("--boundary", choices=("free", "periodic"), help="lattice boundary (default free)")
+    m.add_argument("--stack", choices=("volume", "planes"),
+                   help="a stack of planes is one 3-D volume, z coupling from the voxel size "
+                        "(default), or planes cleaned one by one")
+    m.add_argument("--tile", type=_positive_int, metavar="SIZE",
+                   help="binary: clean in tiles of SIZE pixels, reading and writing uncompressed "
+                        "TIFF band by band (memory bounded; same result as untiled)")
     s = p.add_argument_group("sampler")
-    s.add_argument("--schedule", choices=sorted(SCHEDULES), default="geometric",
-                   help="annealing schedule for --estimate map")
-    s.add_argument("--t-start", type=float, default=3.0, metavar="T", help="start temperature")
-    s.add_argument("--t-end", type=float, default=0.05, metavar="T", help="end temperature")
+    s.add_argument("--schedule", choices=sorted(SCHEDULES),
+                   help="annealing schedule for --estimate map (default geometric)")
+    s.add_argument("--t-start", type=float, metavar="T", help="start temperature (default 3.0)")
+    s.add_argument("--t-end", type=float, metavar="T", help="end temperature (default 0.05)")
     s.add_argument("--sweeps", type=_positive_int, help="annealing sweeps per chain")
     s.add_argument("--burn-in", type=_count, help="sweeps discarded per temperature-1 chain")
     s.add_argument("--samples", type=_positive_int, help="sweeps kept per temperature-1 chain")
-    s.add_argument("--chains", type=_positive_int, default=2, help="independent chains (default 2)")
-    s.add_argument("--seed", type=int, default=0, help="random seed (default 0: runs repeat exactly)")
-    s.add_argument("--certify", action="store_true",
+    s.add_argument("--chains", type=_positive_int, help="independent chains (default 2)")
+    s.add_argument("--seed", type=_count,
+                   help="run seed; each image's seed is derived from it and the image's relative "
+                        "path (default 0: runs repeat exactly)")
+    s.add_argument("--certify", action="store_true", default=None,
                    help="binary MAP: compute the exact MAP energy by minimum cut and report the gap")
 
 
-def settings_from_args(args) -> Settings:
-    return Settings(kind=args.kind, method=args.method, noise=args.noise, coupling=args.coupling,
-                    coupling_z=args.coupling_z, flip_rate=args.flip_rate,
-                    levels=tuple(args.levels) if args.levels else "auto", sigma=args.sigma,
-                    strength=args.strength, schedule=args.schedule, t_start=args.t_start,
-                    t_end=args.t_end, sweeps=args.sweeps, burn_in=args.burn_in,
-                    samples=args.samples, chains=args.chains, boundary=args.boundary,
-                    certify=args.certify)
+def add_batch_options(p):
+    """Where inputs come from, where results go, and how the work is spread."""
+    b = p.add_argument_group("inputs and outputs")
+    b.add_argument("-o", "--output", required=True, metavar="OUTDIR", help="folder for the results")
+    b.add_argument("-c", "--config", metavar="TOML",
+                   help="config file with [settings] and [batch] tables; flags override it")
+    b.add_argument("-r", "--recursive", action="store_true", default=None,
+                   help="descend into sub-folders (and let ** match folders in patterns)")
+    b.add_argument("--maps", action=argparse.BooleanOptionalAction,
+                   help="write uncertainty maps as float32 TIFF beside each result: P(on) and "
+                        "std for binary, std for grey (default: grey only; on with --report)")
+    b.add_argument("--colour", choices=io.COLOUR_CHOICES,
+                   help="how to turn a colour image into one channel (colour images are refused without it)")
+    b.add_argument("--overwrite", action="store_true", default=None,
+                   help="replace existing results in OUTDIR")
+    b.add_argument("--redo", action="store_true", default=None,
+                   help="clean again the images the manifest shows as done")
+    b.add_argument("--max-pixels", type=_positive_int,
+                   help=f"refuse images larger than this (default {io.DEFAULT_MAX_PIXELS})")
+    b.add_argument("--reference", metavar="DIR",
+                   help="folder of clean references (same relative path or name): adds PSNR, SSIM "
+                        "and, for binary, error rate / Dice / IoU to the manifest and summary.csv")
+    b.add_argument("--data-range", type=_positive_float, metavar="R",
+                   help="intensity range for PSNR/SSIM of float images")
+    b.add_argument("--report", action="store_true", default=None,
+                   help="write OUTDIR/report.html: images, uncertainty maps, energy traces, metrics")
+    w = p.add_argument_group("workers")
+    w.add_argument("-j", "--workers", type=_positive_int,
+                   help="worker processes on this machine (default: every core; 1: in this process)")
+    w.add_argument("--threads", type=_positive_int,
+                   help="numba threads per worker (default: the cores shared out between workers)")
+    w.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run the images as tasks on the Dask cluster at ADDRESS (tcp://host:8786)")
+    w.add_argument("--local-cluster", type=_positive_int, metavar="N",
+                   help="start a local Dask cluster of N worker processes for this run")
+    o = p.add_argument_group("display")
+    o.add_argument("--progress", action=argparse.BooleanOptionalAction,
+                   help="progress bar over images (default: when stderr is a terminal)")
+    o.add_argument("--sweep-bar", action="store_true", default=None,
+                   help="also show a bar over sweeps (with --workers 1)")
+    o.add_argument("-q", "--quiet", action="store_true", help="no line per finished image")
+    o.add_argument("--debug", action="store_true", help="show tracebacks")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -120,97 +198,146 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"mrfclean {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
 
-    c = sub.add_parser("clean", help="clean images", epilog=CLEAN_EPILOG,
+    c = sub.add_parser("clean", help="clean images, folders or patterns", epilog=CLEAN_EPILOG,
                        formatter_class=argparse.RawDescriptionHelpFormatter,
-                       description="Clean one or more images; results go to OUTDIR under the same names.")
-    c.add_argument("inputs", nargs="+", metavar="INPUT", help="TIFF or PNG images")
-    c.add_argument("-o", "--output", required=True, metavar="OUTDIR", help="folder for the results")
-    c.add_argument("--maps", action=argparse.BooleanOptionalAction, default=None,
-                   help="write uncertainty maps as float32 TIFF beside each result: P(on) and "
-                        "std for binary, std for grey (default: grey only)")
-    c.add_argument("--colour", choices=io.COLOUR_CHOICES,
-                   help="how to turn a colour image into one channel (colour images are refused without it)")
-    c.add_argument("--overwrite", action="store_true", help="replace existing results in OUTDIR")
-    c.add_argument("--max-pixels", type=_positive_int, default=io.DEFAULT_MAX_PIXELS,
-                   help="refuse images larger than this (default %(default)s)")
-    c.add_argument("--progress", action="store_true", help="show a progress bar over sweeps")
-    c.add_argument("--debug", action="store_true", help="show tracebacks")
+                       description="Clean images; results go to OUTDIR under the same relative paths.")
+    c.add_argument("inputs", nargs="+", metavar="INPUT",
+                   help="TIFF or PNG images, folders, or glob patterns (quote them)")
+    add_batch_options(c)
     add_model_options(c)
 
     s = sub.add_parser("score", help="compare cleaned images with references", epilog=SCORE_EPILOG,
                        formatter_class=argparse.RawDescriptionHelpFormatter,
                        description="Print PSNR, SSIM and, for binary images, error rate, Dice and IoU.")
-    s.add_argument("cleaned", metavar="CLEANED")
-    s.add_argument("reference", metavar="REFERENCE")
-    s.add_argument("--data-range", type=float, help="intensity range for PSNR/SSIM (float images)")
+    s.add_argument("cleaned", metavar="CLEANED", help="an image or a folder")
+    s.add_argument("reference", metavar="REFERENCE", help="an image or a folder")
+    s.add_argument("-r", "--recursive", action="store_true", help="descend into sub-folders")
+    s.add_argument("--csv", metavar="PATH", help="also write the table as CSV")
+    s.add_argument("--data-range", type=_positive_float, help="intensity range for PSNR/SSIM (float images)")
     s.add_argument("--debug", action="store_true", help="show tracebacks")
+
+    r = sub.add_parser("report", help="write the HTML report of a finished batch", epilog=REPORT_EPILOG,
+                       formatter_class=argparse.RawDescriptionHelpFormatter,
+                       description="Write OUTDIR/report.html from OUTDIR's manifest and results.")
+    r.add_argument("outdir", metavar="OUTDIR")
+    r.add_argument("--output", metavar="HTML", help="where to write the report (default OUTDIR/report.html)")
+    r.add_argument("--debug", action="store_true", help="show tracebacks")
     return parser
 
 
-def _describe(outcome) -> str:
-    r = outcome.result
-    p, d = r.params, r.diagnostics
-    bits = [f"{r.kind} {r.method.upper()}"]
-    if r.kind == "binary":
-        bits.append(f"coupling {p['coupling']:.3g}")
-        if "flip_rate" in p:
-            bits.append(f"flip rate {p['flip_rate']:.3g}")
-    if d.rhat == d.rhat:  # not nan
-        bits.append(f"R-hat {d.rhat:.3f}")
-    if d.energy_gap is not None:
-        bits.append(f"energy gap to exact MAP {100 * d.energy_gap:.4f}%")
-    bits.append(f"{outcome.seconds:.1f} s")
-    return ", ".join(bits)
+# ---------------------------------------------------------------------------
+# commands
+# ---------------------------------------------------------------------------
+def _err(message):
+    from tqdm import tqdm
+
+    tqdm.write(message, file=sys.stderr)
+
+
+def _out(message):
+    from tqdm import tqdm
+
+    tqdm.write(message, file=sys.stdout)
+
+
+def _on_sigterm(signum, frame):
+    raise KeyboardInterrupt
 
 
 def run_clean(args) -> int:
-    settings = settings_from_args(args)
-    failed = 0
-    for path in args.inputs:
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", ChainsDisagree)  # reported as a note below
-                outcome = clean_file(path, args.output, settings=settings, rng=args.seed, maps=args.maps,
-                                     colour=args.colour, overwrite=args.overwrite,
-                                     max_pixels=args.max_pixels, progress=args.progress)
-        except (io.InputError, FileExistsError) as exc:
-            if args.debug:
-                raise
-            print(str(exc), file=sys.stderr)
-            failed += 1
-            continue
-        except Exception as exc:  # one line per file, the batch goes on
-            if args.debug:
-                raise
-            print(f"{path}: {type(exc).__name__}: {' '.join(str(exc).split())}", file=sys.stderr)
-            failed += 1
-            continue
-        extra = "".join(f"\n  {name}: {p}" for name, p in outcome.maps.items())
-        print(f"{path} -> {outcome.output} ({_describe(outcome)}){extra}")
-        for note in outcome.result.diagnostics.notes:
-            print(f"{path}: note: {note}", file=sys.stderr)
-    return EXIT_FAILED if failed else EXIT_OK
+    from .batch import run_batch
+    from .config import ConfigError, resolve
+
+    import dataclasses
+
+    from .clean import Settings
+
+    names = [f.name for f in dataclasses.fields(Settings)] + list(BATCH_FLAGS)
+    flags = {name: getattr(args, name) for name in names if hasattr(args, name)}
+    if flags.get("levels") is not None:
+        flags["levels"] = tuple(flags["levels"])
+    if flags["progress"] is None and not (args.config and _config_sets(args.config, "progress")):
+        flags["progress"] = sys.stderr.isatty()
+    if flags["scheduler"] is not None and flags["local_cluster"] is not None:
+        print("mrfclean clean: give --scheduler or --local-cluster, not both", file=sys.stderr)
+        return EXIT_USAGE
+    try:
+        resolved = resolve(flags, args.config)
+    except (ConfigError, ValueError) as exc:
+        print(str(exc), file=sys.stderr)
+        return EXIT_USAGE
+
+    def log(message, error):
+        if error:
+            _err(message)
+        elif not args.quiet:
+            _out(message)
+
+    old = signal.signal(signal.SIGTERM, _on_sigterm)
+    try:
+        summary = run_batch(args.inputs, args.output, settings=resolved.settings,
+                            options=resolved.options, log=log, config=resolved.effective())
+    except KeyboardInterrupt:
+        print("interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except OSError as exc:  # the output folder itself cannot be written
+        if args.debug:
+            raise
+        print(f"{args.output}: {exc.strerror or exc}", file=sys.stderr)
+        return EXIT_FAILED
+    finally:
+        signal.signal(signal.SIGTERM, old)
+    if args.debug:
+        for e in summary.entries:
+            if e.get("traceback"):
+                print(f"{e['input']}:\n{e['traceback']}", file=sys.stderr)
+    print(summary.table())
+    if summary.interrupted:
+        return EXIT_INTERRUPTED
+    return EXIT_OK if summary.ok else EXIT_FAILED
+
+
+def _config_sets(path, key) -> bool:
+    from .config import ConfigError, load_config
+
+    try:
+        return key in load_config(path)["batch"]
+    except ConfigError:
+        return False  # resolve() reports it
 
 
 def run_score(args) -> int:
-    from .metrics import format_table, score
+    from .batch import score_folders
+    from .metrics import format_table
+
+    rows, failures = score_folders(args.cleaned, args.reference, recursive=args.recursive,
+                                   data_range=args.data_range, debug=args.debug)
+    for path, message in failures:
+        print(f"{path}: {message}", file=sys.stderr)
+    if rows:
+        print(format_table(rows))
+        if args.csv:
+            from .batch import write_rows_csv
+
+            try:
+                write_rows_csv(args.csv, rows)
+            except OSError as exc:
+                print(f"{args.csv}: {exc.strerror or exc}", file=sys.stderr)
+                return EXIT_FAILED
+    return EXIT_FAILED if failures or not rows else EXIT_OK
+
+
+def run_report(args) -> int:
+    from .report import batch_report
 
     try:
-        a = io.read_image(args.cleaned).array
-        b = io.read_image(args.reference).array
-        if a.shape != b.shape:
-            raise io.InputError(args.cleaned, f"shape {a.shape} differs from the reference's {b.shape}")
-        try:
-            row = score(b, a, data_range=args.data_range)
-        except ValueError as exc:
-            raise io.InputError(args.cleaned, str(exc)) from None
-    except io.InputError as exc:
+        path = batch_report(args.outdir, path=args.output)
+    except (OSError, ValueError) as exc:
         if args.debug:
             raise
-        print(str(exc), file=sys.stderr)
+        print(f"{args.outdir}: {' '.join(str(exc).split())}", file=sys.stderr)
         return EXIT_FAILED
-    row = {"image": Path(args.cleaned).name, **row}
-    print(format_table([row]))
+    print(path)
     return EXIT_OK
 
 
@@ -223,7 +350,9 @@ def main(argv=None) -> int:
         return EXIT_USAGE
     if args.command == "clean":
         return run_clean(args)
-    return run_score(args)
+    if args.command == "score":
+        return run_score(args)
+    return run_report(args)
 
 
 if __name__ == "__main__":  # pragma: no cover

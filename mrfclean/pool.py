@@ -1,0 +1,203 @@
+"""Where batch and sweep tasks run: in this process or in a pool of worker processes.
+
+Every executor has the same small interface, ``run(fn, items, on_start=None)``,
+a generator that yields ``(index, value)`` pairs as tasks finish (in any
+order).  ``value`` is what ``fn(item)`` returned, or a :class:`WorkerLost`
+when the process running the task died and the retries ran out.  ``fn`` must
+catch its own errors (a failed image is a result, not an exception); what
+reaches the executor is a dead worker, an interrupted run or a bug.
+
+:class:`LocalPool` is the default (one process per core, started with
+``spawn`` so that no thread state of the parent leaks into the workers);
+:class:`InProcess` runs tasks one after the other here, and
+:class:`mrfclean.cluster.DaskExecutor` sends them to a Dask cluster.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures as cf
+import contextlib
+import multiprocessing
+import os
+import signal
+from concurrent.futures.process import BrokenProcessPool
+
+#: Attempts per task when its worker process dies (killed, out of memory).
+MAX_ATTEMPTS = 3
+
+
+class WorkerLost(Exception):
+    """The process running a task died before returning a result."""
+
+
+def cpu_count() -> int:
+    """Cores this process may use (the affinity mask where the OS has one)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):
+        return max(1, os.cpu_count() or 1)
+
+
+def default_threads(workers: int) -> int:
+    """Numba threads per worker: the cores shared out between the workers."""
+    return max(1, cpu_count() // max(1, workers))
+
+
+def set_threads(n: int | None) -> int | None:
+    """Set numba's thread count for this thread; return the previous value."""
+    if n is None:
+        return None
+    import numba
+
+    old = numba.get_num_threads()
+    numba.set_num_threads(max(1, min(int(n), numba.config.NUMBA_NUM_THREADS)))
+    return old
+
+
+def _init_worker(threads):
+    # Ctrl-C goes to the whole process group; the parent decides what stops.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    set_threads(threads)
+
+
+class InProcess:
+    """Run tasks one after the other in this process (``workers=1``)."""
+
+    workers = 1
+
+    def __init__(self, threads: int | None = None):
+        self.threads = threads
+
+    def run(self, fn, items, on_start=None):
+        old = set_threads(self.threads)
+        try:
+            for i, item in enumerate(items):
+                if on_start is not None:
+                    on_start(i)
+                yield i, fn(item)
+        finally:
+            set_threads(old)
+
+    def close(self):
+        pass
+
+
+class LocalPool:
+    """A pool of worker processes on this machine.
+
+    Parameters
+    ----------
+    workers : int
+        Processes (default: every core).
+    threads : int, optional
+        Numba threads per worker (default: the cores shared out).
+    max_attempts : int
+        A task whose worker dies is resubmitted to a fresh pool up to this
+        many times in all, then reported as :class:`WorkerLost`.
+    """
+
+    def __init__(self, workers: int | None = None, threads: int | None = None,
+                 max_attempts: int = MAX_ATTEMPTS):
+        self.workers = int(workers or cpu_count())
+        if self.workers < 1:
+            raise ValueError(f"workers must be at least 1, got {workers}")
+        self.threads = default_threads(self.workers) if threads is None else int(threads)
+        self.max_attempts = int(max_attempts)
+
+    def _new_executor(self):
+        return cf.ProcessPoolExecutor(
+            max_workers=self.workers, mp_context=multiprocessing.get_context("spawn"),
+            initializer=_init_worker, initargs=(self.threads,))
+
+    @staticmethod
+    def _stop(ex):
+        """Stop an executor now: cancel what waits, end the processes that run."""
+        procs = list((getattr(ex, "_processes", None) or {}).values())
+        ex.shutdown(wait=False, cancel_futures=True)
+        for p in procs:
+            with contextlib.suppress(Exception):
+                p.terminate()
+        for p in procs:
+            with contextlib.suppress(Exception):
+                p.join(timeout=5)
+
+    def run(self, fn, items, on_start=None):
+        items = list(items)
+        pending = list(range(len(items)))[::-1]  # a stack: pop() gives the next in order
+        attempts = [0] * len(items)
+        window = 2 * self.workers  # bounded submission: 'started' means really started soon
+        ex = self._new_executor()
+        running: dict[cf.Future, int] = {}
+        try:
+            while pending or running:
+                while pending and len(running) < window:
+                    i = pending.pop()
+                    attempts[i] += 1
+                    if on_start is not None and attempts[i] == 1:
+                        on_start(i)
+                    try:
+                        running[ex.submit(fn, items[i])] = i
+                    except BrokenProcessPool:
+                        pending.append(i)
+                        attempts[i] -= 1
+                        break
+                done, _ = cf.wait(running, return_when=cf.FIRST_COMPLETED)
+                broken = False
+                for fut in done:
+                    i = running.pop(fut)
+                    try:
+                        value = fut.result()
+                    except BrokenProcessPool:
+                        broken = True
+                        if attempts[i] >= self.max_attempts:
+                            yield i, WorkerLost(f"worker process died {attempts[i]} times while "
+                                                "running this task (killed, or out of memory?)")
+                        else:
+                            pending.append(i)
+                        continue
+                    yield i, value
+                if broken or getattr(ex, "_broken", False):
+                    # every task still in flight died with the pool: run them again
+                    for fut, i in list(running.items()):
+                        if attempts[i] >= self.max_attempts:
+                            yield i, WorkerLost(f"worker process died {attempts[i]} times while "
+                                                "running this task (killed, or out of memory?)")
+                        else:
+                            pending.append(i)
+                    running.clear()
+                    self._stop(ex)
+                    ex = self._new_executor()
+        except BaseException:
+            self._stop(ex)
+            raise
+        else:
+            ex.shutdown(wait=True)
+
+    def close(self):
+        pass
+
+
+def make_executor(workers=None, threads=None, *, scheduler=None, local_cluster=None):
+    """The executor for a batch or sweep.
+
+    Parameters
+    ----------
+    workers : int, optional
+        Local worker processes (default: every core); 1 runs in this process.
+    threads : int, optional
+        Numba threads per worker.
+    scheduler : str, optional
+        Address of a running Dask scheduler (``tcp://host:8786``).
+    local_cluster : int, optional
+        Start a local Dask cluster with this many worker processes.
+    """
+    if scheduler is not None or local_cluster is not None:
+        from .cluster import DaskExecutor
+
+        return DaskExecutor(address=scheduler, local_workers=local_cluster, threads=threads)
+    workers = cpu_count() if workers is None else int(workers)
+    if workers < 1:
+        raise ValueError(f"workers must be at least 1, got {workers}")
+    if workers == 1:
+        return InProcess(threads=default_threads(1) if threads is None else threads)
+    return LocalPool(workers, threads)
