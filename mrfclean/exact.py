@@ -47,8 +47,6 @@ MAX_ENUMERATION_SITES = 24
 #: range.
 _CAPACITY_LIMIT = 2**30 - 1
 
-_CHUNK = 1 << 15
-
 
 def _bonds(grid, coupling, coupling_z):
     """Every neighbour pair ``(a, b, weight)`` in flat C-order site indices.
@@ -71,8 +69,37 @@ def _bonds(grid, coupling, coupling_z):
 
 def _spins_of(codes, n_sites):
     """Spins (float64, +1/-1) of configuration indices: bit ``k`` set means site ``k`` is +1."""
-    bits = (codes[:, None] >> np.arange(n_sites, dtype=np.int64)) & 1
-    return (2 * bits - 1).astype(np.float64)
+    as_bytes = np.ascontiguousarray(codes, dtype="<u8").view(np.uint8).reshape(-1, 8)
+    bits = np.unpackbits(as_bytes, axis=1, bitorder="little")[:, :n_sites]
+    return 2.0 * bits - 1.0
+
+
+_POPCOUNT16 = np.array([bin(k).count("1") for k in range(1 << 16)], dtype=np.uint8)
+
+
+def _popcount(x):
+    """Number of set bits of non-negative int64 values below 2**32."""
+    return _POPCOUNT16[x & 0xFFFF].astype(np.int64) + _POPCOUNT16[(x >> 16) & 0xFFFF]
+
+
+def _bond_groups(grid, coupling, coupling_z):
+    """Bonds grouped as ``(weight, offset, mask)``: pairs ``(k, k + offset)``, ``k`` a bit of ``mask``.
+
+    A pair listed twice (a periodic side of length 2) is one bond of twice the
+    weight; pairs of equal weight and offset share a mask, so the number of
+    disagreeing pairs of a configuration with index ``c`` is
+    ``popcount((c ^ (c >> offset)) & mask)``.
+    """
+    a, b, w = _bonds(grid, coupling, coupling_z)
+    lo, hi = np.minimum(a, b), np.maximum(a, b)
+    pairs, inverse = np.unique(np.stack([lo, hi]), axis=1, return_inverse=True)
+    weight = np.zeros(pairs.shape[1])
+    np.add.at(weight, inverse.ravel(), w)
+    groups = {}
+    for (k, m), wt in zip(pairs.T.tolist(), weight.tolist()):
+        key = (wt, m - k)
+        groups[key] = groups.get(key, 0) | (1 << k)
+    return [(wt, off, mask) for (wt, off), mask in groups.items() if wt != 0.0]
 
 
 def configuration_index(spins, *, stacked=False):
@@ -158,13 +185,19 @@ def configuration_energies(model) -> np.ndarray:
         raise ValueError(f"enumeration needs at most {MAX_ENUMERATION_SITES} sites, "
                          f"got a lattice of {n} ({grid.shape})")
     h = np.asarray(model.h, dtype=np.float64).ravel()
-    a, b, w = _bonds(grid, model.coupling, model.coupling_z)
-    total = 1 << n
-    energies = np.empty(total, dtype=np.float64)
-    for start in range(0, total, _CHUNK):
-        codes = np.arange(start, min(start + _CHUNK, total), dtype=np.int64)
-        s = _spins_of(codes, n)
-        energies[start:start + codes.size] = -((s[:, a] * s[:, b]) @ w) - s @ h
+    codes = np.arange(1 << n, dtype=np.int64)
+    energies = np.zeros(codes.size)
+    for weight, offset, mask in _bond_groups(grid, model.coupling, model.coupling_z):
+        # s_i s_j = 1 - 2 [x_i != x_j] summed over the group's pairs
+        differ = _popcount((codes ^ (codes >> offset)) & mask)
+        energies -= weight * (bin(mask).count("1") - 2.0 * differ)
+    # sum_i h_i s_i = 2 sum_{x_i = 1} h_i - sum_i h_i, looked up one byte of sites at a time
+    for first in range(0, n, 8):
+        sites = np.arange(first, min(first + 8, n))
+        byte_values = np.arange(256)[:, None] >> (sites - first)[None, :] & 1
+        table = byte_values @ h[sites]
+        energies -= 2.0 * table[(codes >> first) & 255]
+    energies += h.sum()
     return energies
 
 
@@ -176,7 +209,8 @@ def enumerate_posterior(model, *, temperature=1.0) -> Enumeration:
         p(s) = \frac{\exp(-E(s)/T)}{Z}, \qquad
         \ln Z = \operatorname{logsumexp}_s \left(-E(s)/T\right),
 
-    computed in float64 with the log-sum-exp shift, in chunks of configurations.
+    computed in float64 with the log-sum-exp shift.  Memory and time grow as
+    :math:`2^N`: about a second and a few hundred MB at N = 22.
 
     Parameters
     ----------
@@ -217,14 +251,15 @@ def enumerate_posterior(model, *, temperature=1.0) -> Enumeration:
     norm = weights.sum()
     log_partition = float(shift + np.log(norm))
     p = weights / norm
-    on = np.zeros(n)
-    corr = np.zeros((n, n))
-    for start in range(0, p.size, _CHUNK):
-        codes = np.arange(start, min(start + _CHUNK, p.size), dtype=np.int64)
-        s = _spins_of(codes, n)
-        pc = p[start:start + codes.size]
-        on += pc @ (s > 0)
-        corr += (s * pc[:, None]).T @ s
+    # P(x_k = 1) and P(x_i = x_j = 1) read off p reshaped so that the bits in
+    # question are axes of their own (bit k of the index is site k)
+    on = np.array([p.reshape(-1, 2, 1 << k)[:, 1, :].sum() for k in range(n)])
+    corr = np.eye(n)
+    for j in range(n):
+        for i in range(j):
+            both = p.reshape(-1, 2, 1 << (j - i - 1), 2, 1 << i)[:, 1, :, 1, :].sum()
+            differ = on[i] + on[j] - 2.0 * both
+            corr[i, j] = corr[j, i] = 1.0 - 2.0 * differ
     best = int(np.argmin(energies))
     minimiser = _spins_of(np.array([best], dtype=np.int64), n).astype(np.int8).reshape(grid.shape)
     return Enumeration(temperature=t, log_partition=log_partition,
@@ -362,7 +397,8 @@ def exact_map(model) -> MinCutMap:
     on = np.zeros(n + 2, dtype=bool)
     on[reach] = True
     if on[snk]:
-        raise RuntimeError("maximum flow did not saturate a cut (sink reachable in the residual graph)")
+        raise RuntimeError("maximum flow did not saturate a cut "
+                           "(sink reachable in the residual graph)")
     rows = np.repeat(on, np.diff(capacity.indptr))
     cut_value = int(np.sum(rounded[rows & ~on[capacity.indices]], dtype=np.int64))
     if cut_value != int(result.flow_value):
