@@ -142,7 +142,8 @@ def assert_within_mc_error(batches, exact, what):
     worst = int(np.nanargmax(np.abs(t)))
     assert np.all(np.abs(t) < crit), (
         f"{what}: |t| = {abs(t[worst]):.2f} >= {crit:.2f} at {worst} "
-        f"(estimate {batches.mean(axis=0)[worst]:.5f}, exact {exact[worst]:.5f}, se {se[worst]:.1e})")
+        f"(estimate {batches.mean(axis=0)[worst]:.5f}, exact {exact[worst]:.5f}, "
+        f"se {se[worst]:.1e})")
 
 
 def posterior_batches(model, temperature):
