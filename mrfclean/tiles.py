@@ -280,6 +280,7 @@ class TiledBinaryModel(ChainModel):
         self._last = None  # (state, energy) of the last pass
         self._tally_store = {"counts": None, "dtype": np.uint16, "width": W}
         self.peak_band_bytes = 0  # bookkeeping: largest working set of one band
+        self.peak_fields = 0  # bookkeeping: most bands' fields held at once
 
     # --- geometry -----------------------------------------------------------------
     def _rows_slice(self, r0, r1):
@@ -304,6 +305,7 @@ class TiledBinaryModel(ChainModel):
         e0, e1 = self._extended(b)
         f = self._pack_rows(self.raw.field(self.rows.rows(e0, e1)), e0, np.float32)
         self._fields[b] = f
+        self.peak_fields = max(self.peak_fields, len(self._fields))
         return f
 
     def _forget_fields(self, keep_from):

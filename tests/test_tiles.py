@@ -1,0 +1,214 @@
+"""Tiled cleaning against the whole-image sampler: bit-identical sweeps, seams, memory bookkeeping.
+
+The reference is the untiled sampler of mrfclean itself (BinaryModel and
+clean_binary), whose kernels are checked against numpy and exact enumeration in
+tests/test_kernels.py.  A tiled sweep uses the same counter-based random
+numbers (hashes of global site indices), so the strongest check applies:
+equality bit for bit.  A naive tiling (tiles swept in place one after another)
+is run as a control to show that the comparison does detect seams.
+"""
+
+import math
+import warnings
+
+import numba
+import numpy as np
+import pytest
+import tifffile
+from skimage.data import binary_blobs
+
+from mrfclean import Settings, clean_file, io, kernels
+from mrfclean.binary import clean_binary
+from mrfclean.diagnostics import ChainsDisagree
+from mrfclean.lattice import Grid
+from mrfclean.models.binary import BinaryModel, FlipNoise, TwoLevelGaussian
+from mrfclean.tiles import RawField, TiledBinaryModel, band_bounds, clean_binary_tiled
+
+SEED = 99
+TEMPS = [1.0, 2.5, 0.6, math.inf, 0.3]
+
+
+def _pair(shape, tile, *, rate=0.3, seed=1, noise=None):
+    rng = np.random.default_rng(seed)
+    img = (rng.random(shape) < rate).astype(np.uint8) * 255
+    noise = noise or FlipNoise(0.15)
+    t = np.where(img == 255, 1, -1).astype(np.int8)
+    whole = BinaryModel(noise.field(t), coupling=0.7, coupling_z=0.4, start=t)
+    tiled = TiledBinaryModel(img, RawField(noise, "flip", 255, np.uint8), coupling=0.7,
+                             coupling_z=0.4, tile=tile)
+    return whole, tiled
+
+
+@pytest.mark.parametrize("shape, tile", [
+    ((1, 37, 29), (8, 8)),      # odd sizes, last band and last tile ragged
+    ((3, 21, 30), (5, 7)),      # a stack; odd tile width rounds to even columns
+    ((2, 9, 11), (2, 2)),       # smallest tiles: every margin overlaps two tiles
+    ((1, 17, 40), (40, 6)),     # one band, many tiles
+])
+@pytest.mark.parametrize("chain", [0, 1])
+def test_tiled_sweeps_energy_and_quench_are_bit_identical(shape, tile, chain):
+    whole, tiled = _pair(shape, tile)
+    a, b = whole.start(chain, SEED), tiled.start(chain, SEED)
+    assert np.array_equal(a, b)
+    for k, temp in enumerate(TEMPS):
+        key = int(kernels.stream_key(SEED, chain, k))
+        whole.sweep(a, temp, key)
+        tiled.sweep(b, temp, key)
+        assert np.array_equal(a, b), f"sweep {k}"
+        # same terms summed in another order: equal to rounding
+        assert tiled.energy(b) == pytest.approx(whole.energy(a), rel=1e-12, abs=1e-9)
+    assert whole.quench(a) == tiled.quench(b)
+    assert np.array_equal(a, b)
+    assert tiled.summary(b) == whole.summary(a)
+
+
+def _naive_tiled_sweep(state, field, grid, tile, beta, beta_z, temp, key):
+    """Control: each tile swept in place with the current spins of its neighbours as halo."""
+    Z, H, W = grid.shape
+    for i0 in range(0, H, tile):
+        i1 = min(i0 + tile, H)
+        for j0 in range(0, W, tile):
+            j1 = min(j0 + tile, W)
+            cols = slice(j0 // 2, j0 // 2 + (j1 - j0 + 1) // 2 + 2)
+            block = np.ascontiguousarray(state[:, :, i0:i1 + 2, cols])
+            hb = np.ascontiguousarray(field[:, :, i0:i1 + 2, cols])
+            kernels.gibbs_sweep(block, hb, j1 - j0, beta, beta_z, temp, np.uint64(key),
+                                (i0 + j0) & 1, 0, i0, j0, H, W, False)
+            state[:, :, i0 + 1:i1 + 1, cols][..., 1:-1] = block[:, :, 1:-1, 1:-1]
+
+
+def test_control_naive_tiling_is_not_the_whole_image_sweep():
+    whole, _ = _pair((1, 32, 32), (8, 8))
+    a = whole.start(0, SEED)
+    b = a.copy()
+    key = int(kernels.stream_key(SEED, 0, 0))
+    whole.sweep(a, 1.0, key)
+    _naive_tiled_sweep(b, whole.packed_field, whole.grid, 8, 0.7, 0.4, 1.0, key)
+    assert not np.array_equal(a, b)  # stale halos give a different (non-Gibbs) update
+
+
+def _noisy_blobs(n=72, rate=0.12, seed=5):
+    img = binary_blobs(n, blob_size_fraction=0.1, rng=3).astype(np.uint8) * 255
+    flips = np.random.default_rng(seed).random(img.shape) < rate
+    return img, np.where(flips, 255 - img, img).astype(np.uint8)
+
+
+@pytest.mark.parametrize("kw", [
+    dict(method="map", sweeps=15, coupling=0.8, flip_rate=0.12),
+    dict(method="mpm", burn_in=5, samples=15, coupling=0.8, flip_rate=0.12),
+    dict(method="map", sweeps=8, uncertainty=True, burn_in=3, samples=6),  # estimated parameters
+])
+def test_tiled_clean_equals_whole_clean(kw):
+    _, noisy = _noisy_blobs()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ChainsDisagree)
+        a = clean_binary(noisy, rng=7, **kw)
+        b = clean_binary_tiled(noisy, tile=20, rng=7, **kw)
+    assert np.array_equal(a.estimate, b.estimate) and b.estimate.dtype == noisy.dtype
+    assert b.diagnostics.final_energy == pytest.approx(a.diagnostics.final_energy, rel=1e-12)
+    assert np.allclose(a.energy, b.energy, rtol=1e-12)
+    assert a.params["coupling"] == b.params["coupling"]
+    if a.mean is not None:
+        assert np.array_equal(a.mean, b.mean) and np.array_equal(a.std, b.std)
+
+
+def test_gaussian_data_term_float_and_uint16_tiled_equals_whole():
+    img, noisy = _noisy_blobs(n=40)
+    rng = np.random.default_rng(2)
+    for y in (noisy.astype(np.float32) / 255 + rng.normal(0, 0.3, noisy.shape).astype(np.float32),
+              (noisy.astype(np.uint16) * 100 + rng.integers(0, 9000, noisy.shape)).astype(np.uint16)):
+        kw = dict(method="map", sweeps=6, chains=1, noise="gaussian", coupling=0.8)
+        a = clean_binary(y, rng=3, **kw)
+        b = clean_binary_tiled(y, tile=12, rng=3, **kw)
+        assert np.array_equal(a.estimate, b.estimate) and b.estimate.dtype == y.dtype
+
+
+def test_seam_region_agrees_like_the_interior():
+    """Seam pixels (within 2 px of a tile edge) against the interior, relative to seed noise."""
+    _, noisy = _noisy_blobs()
+    tile = 16
+    kw = dict(method="mpm", burn_in=5, samples=20, coupling=0.8, flip_rate=0.12, chains=1)
+    whole = clean_binary(noisy, rng=11, **kw)
+    tiled = clean_binary_tiled(noisy, tile=tile, rng=11, **kw)
+    other_seed = clean_binary(noisy, rng=12, **kw)
+    idx = np.arange(noisy.shape[0])
+    near = np.minimum(idx % tile, (-idx) % tile) <= 2
+    seam = near[:, None] | near[None, :]
+    for region in (seam, ~seam):
+        # tiled vs whole: no difference at all, in the seam as in the interior ...
+        assert np.count_nonzero(tiled.estimate[region] != whole.estimate[region]) == 0
+        assert np.max(np.abs(tiled.mean[region] - whole.mean[region])) == 0
+        # ... while a change of seed alone moves marginals everywhere (so the check can fail)
+        assert np.max(np.abs(other_seed.mean[region] - whole.mean[region])) > 0.1
+
+
+def test_tiled_sweep_does_not_depend_on_thread_count():
+    _, noisy = _noisy_blobs(n=48)
+    kw = dict(method="mpm", burn_in=2, samples=4, coupling=0.8, flip_rate=0.12, chains=1)
+    old = numba.get_num_threads()
+    try:
+        numba.set_num_threads(1)
+        a = clean_binary_tiled(noisy, tile=16, rng=5, **kw)
+        numba.set_num_threads(min(2, numba.config.NUMBA_NUM_THREADS))
+        b = clean_binary_tiled(noisy, tile=16, rng=5, **kw)
+    finally:
+        numba.set_num_threads(old)
+    assert np.array_equal(a.mean, b.mean)
+
+
+def test_memory_bookkeeping_is_bounded_by_the_band_not_the_image():
+    peaks = []
+    for height in (64, 256):
+        _, tiled = _pair((1, height, 48), (16, 16))
+        tiled.cache_all = False  # recompute fields band by band, as for a huge image
+        s = tiled.start(0, SEED)
+        tiled.sweep(s, 1.0, 1)
+        tiled.quench(s)
+        peaks.append(tiled.peak_band_bytes)
+        assert tiled.peak_fields <= 3  # at most three bands' fields at once
+    assert peaks[0] == peaks[1]  # four times the image, same working set
+    # a band of 16 rows, 48 columns: spins 1 B + fields 4 B per packed site with halo,
+    # blocks of 18 rows x 12 packed columns; bounded by 16 B per band pixel (with halos)
+    band_sites = 2 * (16 + 4) * (48 // 2 + 2)
+    assert peaks[0] <= 16 * band_sites
+
+
+def test_band_bounds_never_leave_a_one_row_band():
+    for h in range(2, 40):
+        for size in range(2, 12):
+            bands = band_bounds(h, size)
+            assert bands[0][0] == 0 and bands[-1][1] == h
+            assert all(b1 - b0 >= 2 for b0, b1 in bands)
+            assert all(bands[k][1] == bands[k + 1][0] for k in range(len(bands) - 1))
+
+
+def test_tiled_file_equals_untiled_file_and_keeps_metadata(tmp_path):
+    _, noisy = _noisy_blobs(n=40)
+    stack = np.stack([noisy, noisy[::-1], noisy[:, ::-1]])
+    p = tmp_path / "scan.tif"
+    tifffile.imwrite(p, stack, imagej=True, resolution=(2.0, 2.0),
+                     metadata={"spacing": 1.5, "unit": "um", "axes": "ZYX"})
+    assert isinstance(io.open_image(p).array, io.TiffRegions)  # read band by band
+    s = Settings(coupling=0.8, flip_rate=0.12, method="mpm", burn_in=3, samples=6, chains=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ChainsDisagree)
+        a = clean_file(p, tmp_path / "whole", settings=s, rng=0, maps=True)
+        b = clean_file(p, tmp_path / "tiled", settings=s.replace(tile=16), rng=0, maps=True)
+    assert np.array_equal(tifffile.imread(a.output), tifffile.imread(b.output))
+    assert np.array_equal(tifffile.imread(a.maps["p_on"]), tifffile.imread(b.maps["p_on"]))
+    with tifffile.TiffFile(b.output) as t:
+        assert t.imagej_metadata["spacing"] == 1.5 and t.series[0].axes == "ZYX"
+    assert b.result.params["coupling_z"] == pytest.approx(0.8 * 0.5 / 1.5)  # voxel rule
+
+
+def test_tiled_file_refuses_grey_images_in_one_line(tmp_path):
+    p = tmp_path / "grey.tif"
+    tifffile.imwrite(p, np.arange(64, dtype=np.uint8).reshape(8, 8))
+    with pytest.raises(io.InputError, match="binary images only") as err:
+        clean_file(p, tmp_path / "out", settings=Settings(tile=8), rng=0)
+    assert "\n" not in str(err.value)
+
+
+def test_grid_of_tiled_model_matches_whole_packed_layout():
+    whole, tiled = _pair((2, 10, 13), (4, 4))
+    assert tiled.grid.packed_shape == whole.grid.packed_shape == Grid((2, 10, 13)).packed_shape
