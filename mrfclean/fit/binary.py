@@ -31,6 +31,7 @@ import numpy as np
 from scipy import optimize
 
 from .. import kernels
+from ..sampler import kernel_threads
 from ..models.binary import BinaryModel, FlipNoise, TwoLevelGaussian, neighbour_sums
 
 #: Bounds of estimated parameters (an all-equal image would otherwise drive the
@@ -261,23 +262,24 @@ def fit_binary(observed, *, noise: str, coupling="auto", coupling_z="auto", flip
     state = None
     if beta_fixed is not None and fixed is not None and (betaz_fixed is not None or not planes):
         return BinaryFit(beta, beta_z, term, history)
-    for r in range(rounds):
-        model = BinaryModel(term.field(y), coupling=beta, coupling_z=beta_z, boundary=boundary)
-        if state is None:
-            state = model.start(0, seed)
-        stack = []
-        stats = CouplingStats()
-        for k in range(burn_in + samples):
-            model.sweep(state, 1.0, int(kernels.stream_key(seed, 0, r * 1000 + k)))
-            if k >= burn_in:
-                s = model.image(state)
-                stack.append(s)
-                stats.add(s, boundary)
-        new_term = _noise_from_stats(noise, y, stack, fixed)
-        if new_term is not None:
-            term = new_term
-        b, bz = stats.fit(planes=planes)
-        beta = beta_fixed if beta_fixed is not None else b
-        beta_z = betaz_fixed if betaz_fixed is not None else (bz if planes else beta)
-        history.append({"round": r, "coupling": beta, "coupling_z": beta_z, **term.describe()})
+    with kernel_threads(y.size):
+        for r in range(rounds):
+            model = BinaryModel(term.field(y), coupling=beta, coupling_z=beta_z, boundary=boundary)
+            if state is None:
+                state = model.start(0, seed)
+            stack = []
+            stats = CouplingStats()
+            for k in range(burn_in + samples):
+                model.sweep(state, 1.0, int(kernels.stream_key(seed, 0, r * 1000 + k)))
+                if k >= burn_in:
+                    s = model.image(state)
+                    stack.append(s)
+                    stats.add(s, boundary)
+            new_term = _noise_from_stats(noise, y, stack, fixed)
+            if new_term is not None:
+                term = new_term
+            b, bz = stats.fit(planes=planes)
+            beta = beta_fixed if beta_fixed is not None else b
+            beta_z = betaz_fixed if betaz_fixed is not None else (bz if planes else beta)
+            history.append({"round": r, "coupling": beta, "coupling_z": beta_z, **term.describe()})
     return BinaryFit(beta, beta_z, term, history)
