@@ -538,6 +538,7 @@ def run_batch(inputs, outdir, *, settings: Settings | None = None,
     def on_start(i):
         manifest.append(plan[i][3])
 
+    own_executor = executor is None
     if executor is None:
         # no more local workers than images: a single image runs here, on every core
         workers = min(options.workers or cpu_count(), max(1, len(plan)))
@@ -577,7 +578,7 @@ def run_batch(inputs, outdir, *, settings: Settings | None = None,
                 say("interrupted: finished images are recorded; run the same command "
                     "again to do the rest", True)
     finally:
-        if hasattr(executor, "close"):
+        if own_executor:
             executor.close()
 
     for item in collected.items:

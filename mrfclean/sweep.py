@@ -268,6 +268,7 @@ def run_sweep(pairs, *, grid: dict | None = None, settings=None, base: Settings 
     swept = [k for k in swept if len({json.dumps(jsonable(o.get(k))) for o in overrides}) > 1] or swept
     tasks = [SweepTask(i, jsonable(o), s, name, noisy, ref, image_seed(seed, name), data_range, colour)
              for i, (o, s) in enumerate(zip(overrides, resolved)) for name, noisy, ref in named]
+    own_executor = executor is None
     if executor is None:
         n = min(workers or _cores(), len(tasks))
         executor = make_executor(n, threads, scheduler=scheduler, local_cluster=local_cluster)
@@ -284,7 +285,7 @@ def run_sweep(pairs, *, grid: dict | None = None, settings=None, base: Settings 
                 rows[i] = value
                 bar.update(1)
     finally:
-        if hasattr(executor, "close"):
+        if own_executor:
             executor.close()
     metrics = [k for k in ("psnr", "ssim", "error_rate", "dice", "iou")
                if any(k in r for r in rows)]
