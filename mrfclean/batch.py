@@ -41,7 +41,7 @@ from .clean import Settings, clean_file, output_paths
 from .diagnostics import ChainsDisagree
 from .manifest import (Manifest, ManifestIndex, entry_key, file_hash, jsonable,
                        latest_by_image)
-from .pool import InProcess, cpu_count, make_executor
+from .pool import InProcess, WorkerLost, cpu_count, make_executor
 
 SUMMARY_NAME = "summary.csv"
 REPORT_NAME = "report.html"
@@ -296,6 +296,13 @@ def _trace(energy, temperatures, points=TRACE_POINTS):
 
 def _one_line(exc) -> str:
     return " ".join(str(exc).split())
+
+
+def exception_line(exc) -> str:
+    """One line for an exception that came back from an executor instead of a result."""
+    if isinstance(exc, WorkerLost):
+        return _one_line(exc)
+    return f"{type(exc).__name__}: {_one_line(exc)}"
 
 
 def clean_task(task: Task) -> dict:
@@ -558,7 +565,7 @@ def run_batch(inputs, outdir, *, settings: Settings | None = None,
                 for i, value in executor.run(clean_task, [p[1] for p in plan], on_start=on_start):
                     item, task, key, started = plan[i]
                     if isinstance(value, BaseException):
-                        value = {"status": "failed", "error": _one_line(value)}
+                        value = {"status": "failed", "error": exception_line(value)}
                     entry = {**started, **value}
                     if "metrics_error" in started and "metrics" not in value:
                         entry["metrics_error"] = started["metrics_error"]

@@ -2,8 +2,9 @@
 
 Every executor has the same small interface, ``run(fn, items, on_start=None)``,
 a generator that yields ``(index, value)`` pairs as tasks finish (in any
-order).  ``value`` is what ``fn(item)`` returned, or a :class:`WorkerLost`
-when the process running the task died and the retries ran out.  ``fn`` must
+order).  ``value`` is what ``fn(item)`` returned, the exception it raised, or
+a :class:`WorkerLost` when the process running the task died and the retries
+ran out.  ``fn`` must
 catch its own errors (a failed image is a result, not an exception); what
 reaches the executor is a dead worker, an interrupted run or a bug.
 
@@ -74,7 +75,11 @@ class InProcess:
             for i, item in enumerate(items):
                 if on_start is not None:
                     on_start(i)
-                yield i, fn(item)
+                try:
+                    value = fn(item)
+                except Exception as exc:  # noqa: BLE001 - a bug in fn: a result, the run goes on
+                    value = exc
+                yield i, value
         finally:
             set_threads(old)
 
@@ -155,6 +160,8 @@ class LocalPool:
                         else:
                             pending.append(i)
                         continue
+                    except Exception as exc:  # noqa: BLE001 - raised by fn in the worker
+                        value = exc
                     yield i, value
                 if broken or getattr(ex, "_broken", False):
                     # every task still in flight died with the pool: run them again

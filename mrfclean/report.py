@@ -401,3 +401,19 @@ def sweep_figures(table) -> list[tuple[str, str]]:
                                ticklabels=None if numeric else xs_all)
             figs.append((uri, f"{m} against {p}"))
     return figs
+
+
+def save_sweep_plots(table, folder) -> list[Path]:
+    """Write each curve of :func:`sweep_figures` as ``METRIC_vs_PARAM.png`` in ``folder``."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    written = []
+    for uri, caption in sweep_figures(table):
+        metric, param = caption.split(" against ")
+        safe = "".join(ch if ch.isalnum() or ch in "_-" else "_" for ch in f"{metric}_vs_{param}")
+        path = folder / f"{safe}.png"
+        data = base64.b64decode(uri.split(",", 1)[1])
+        with io.atomic_output(path, overwrite=True) as tmp:
+            Path(tmp).write_bytes(data)
+        written.append(path)
+    return written

@@ -34,7 +34,7 @@ from pathlib import Path
 import numpy as np
 
 from . import io
-from .batch import image_seed
+from .batch import exception_line, image_seed
 from .clean import Settings, clean
 from .diagnostics import ChainsDisagree
 from .manifest import jsonable
@@ -77,8 +77,10 @@ def sweep_task(task: SweepTask) -> dict:
             warnings.simplefilter("ignore", ChainsDisagree)  # recorded as chains_agree
             result = clean(noisy, settings=task.settings, rng=task.seed)
         metrics = score(ref, result.estimate, data_range=task.data_range)
-    except (io.InputError, ValueError, TypeError) as exc:
-        return {**row, "status": "failed", "error": " ".join(str(exc).split()),
+    except io.InputError as exc:
+        return {**row, "status": "failed", "error": exc.message, "seconds": time.perf_counter() - t0}
+    except Exception as exc:  # noqa: BLE001 - one failed run must not stop the sweep
+        return {**row, "status": "failed", "error": f"{type(exc).__name__}: {' '.join(str(exc).split())}",
                 "seconds": time.perf_counter() - t0}
     d = result.diagnostics
     row.update({"status": "done", **metrics, "rhat": d.rhat, "chains_agree": d.chains_agree,
@@ -281,7 +283,7 @@ def run_sweep(pairs, *, grid: dict | None = None, settings=None, base: Settings 
                 if isinstance(value, BaseException):
                     t = tasks[i]
                     value = {"setting": t.setting, **t.overrides, "image": t.image,
-                             "status": "failed", "error": " ".join(str(value).split())}
+                             "status": "failed", "error": exception_line(value)}
                 rows[i] = value
                 bar.update(1)
     finally:
@@ -296,3 +298,143 @@ def _cores():
     from .pool import cpu_count
 
     return cpu_count()
+
+
+# ---------------------------------------------------------------------------
+# sweep specs (TOML)
+# ---------------------------------------------------------------------------
+SPEC_KEYS = {"seed", "workers", "threads", "scheduler", "local_cluster", "output", "data_range",
+             "colour", "base", "grid", "settings", "pairs"}
+
+
+@dataclass
+class SweepSpec:
+    """A sweep read from TOML (see :func:`load_spec`)."""
+
+    pairs: list
+    base: Settings
+    grid: dict | None = None
+    settings: list | None = None
+    seed: int = 0
+    workers: int | None = None
+    threads: int | None = None
+    scheduler: str | None = None
+    local_cluster: int | None = None
+    output: Path = Path("sweep_out")
+    data_range: float | None = None
+    colour: str | None = None
+
+    def run(self, *, progress=False) -> SweepTable:
+        return run_sweep(self.pairs, grid=self.grid, settings=self.settings, base=self.base,
+                         seed=self.seed, workers=self.workers, threads=self.threads,
+                         scheduler=self.scheduler, local_cluster=self.local_cluster,
+                         data_range=self.data_range, colour=self.colour, progress=progress)
+
+
+def _expand_pairs(entry, folder: Path, where: str) -> list[tuple[Path, Path]]:
+    import glob as _glob
+
+    if not isinstance(entry, dict) or "noisy" not in entry or "reference" not in entry:
+        raise ValueError(f"{where}: needs 'noisy' and 'reference'")
+    unknown = set(entry) - {"noisy", "reference", "replace"}
+    if unknown:
+        raise ValueError(f"{where}: unknown key {sorted(unknown)[0]!r}")
+    noisy = str(entry["noisy"])
+    pattern = noisy if Path(noisy).is_absolute() else str(folder / noisy)
+    replace = entry.get("replace")
+    if replace is not None and (not isinstance(replace, list) or len(replace) != 2):
+        raise ValueError(f"{where}: replace must be [old, new]")
+    matches = sorted(_glob.glob(pattern)) if set("*?[") & set(noisy) else [pattern]
+    if not matches:
+        raise ValueError(f"{where}: no files match {noisy!r}")
+    out = []
+    for m in matches:
+        p = Path(m)
+        stem = p.stem.replace(*replace) if replace else p.stem
+        ref = str(entry["reference"]).format(stem=stem, name=p.name, suffix=p.suffix)
+        ref_path = Path(ref) if Path(ref).is_absolute() else folder / ref
+        out.append((p, ref_path))
+    return out
+
+
+def load_spec(path) -> SweepSpec:
+    """Read a sweep spec.
+
+    Layout (paths relative to the spec file)::
+
+        seed = 0
+        workers = 2                 # or scheduler = "tcp://host:8786", or local_cluster = 2
+        output = "sweep_out"
+
+        [base]                      # Settings shared by every run
+        burn_in = 100
+
+        [grid]                      # every combination ...
+        coupling = [0.6, 0.8, 1.0]
+        method = ["map", "mpm"]
+
+        # ... or an explicit list instead of [grid]:
+        # [[settings]]
+        # coupling = 0.8
+
+        [[pairs]]
+        noisy = "scans/colony_noisy.png"
+        reference = "refs/colony_clean.png"
+
+        [[pairs]]                   # many at once: a pattern and a reference template
+        noisy = "scans/*_noisy.png"
+        reference = "refs/{stem}.png"   # {stem}, {name}, {suffix} of the noisy file
+        replace = ["_noisy", "_clean"]  # applied to {stem} first
+
+    Raises
+    ------
+    ValueError
+        With the file name and what is wrong.
+    """
+    from .config import ConfigError, tomllib
+
+    path = Path(path)
+    try:
+        with open(path, "rb") as fh:
+            data = tomllib.load(fh)
+    except FileNotFoundError:
+        raise ConfigError(path, "no such sweep spec") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(path, f"not valid TOML ({exc})") from None
+    unknown = set(data) - SPEC_KEYS
+    if unknown:
+        raise ConfigError(path, f"unknown key {sorted(unknown)[0]!r}; known: {', '.join(sorted(SPEC_KEYS))}")
+    if "grid" in data and "settings" in data:
+        raise ConfigError(path, "give [grid] or [[settings]], not both")
+    folder = path.parent
+    try:
+        base = _settings_for(Settings(), data.get("base", {}))
+        pairs = []
+        for i, entry in enumerate(data.get("pairs", [])):
+            pairs.extend(_expand_pairs(entry, folder, f"pairs[{i}]"))
+        if not pairs:
+            raise ValueError("no [[pairs]]")
+        grid = data.get("grid")
+        if grid is not None:
+            for o in expand_grid(grid):
+                _settings_for(base, o)  # check every combination now, not in a worker
+        settings = data.get("settings")
+        for o in settings or []:
+            _settings_for(base, o)
+    except (ValueError, TypeError) as exc:
+        raise ConfigError(path, str(exc)) from None
+    out = Path(data.get("output", "sweep_out"))
+    return SweepSpec(pairs, base, grid, settings, int(data.get("seed", 0)), data.get("workers"),
+                     data.get("threads"), data.get("scheduler"), data.get("local_cluster"),
+                     out if out.is_absolute() else folder / out, data.get("data_range"),
+                     data.get("colour"))
+
+
+def write_sweep(table: SweepTable, folder) -> dict:
+    """Write ``sweep.csv``, ``sweep.json``, one PNG per curve and ``report.html`` into ``folder``."""
+    from .report import save_sweep_plots, sweep_report
+
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    return {"csv": table.to_csv(folder / "sweep.csv"), "json": table.to_json(folder / "sweep.json"),
+            "plots": save_sweep_plots(table, folder), "report": sweep_report(table, folder / "report.html")}
