@@ -140,20 +140,25 @@ def test_ctrl_c_stops_cleanly_and_rerun_completes(tmp_path):
 
 
 def _workers_of(pid):
-    """Process ids of the pool workers started by ``pid`` (from /proc)."""
-    found = []
+    """Process ids of the pool workers started by ``pid`` (from /proc): its descendants
+    that have no children of their own, less multiprocessing's resource tracker (the
+    workers are children of ``pid`` with spawn, grandchildren through a fork server)."""
+    parent, cmd = {}, {}
     for d in Path("/proc").iterdir():
         if not d.name.isdigit():
             continue
         try:
             stat = (d / "stat").read_text()
-            ppid = int(stat.rsplit(")", 1)[1].split()[1])
-            cmd = (d / "cmdline").read_bytes().replace(b"\0", b" ").decode()
+            parent[int(d.name)] = int(stat.rsplit(")", 1)[1].split()[1])
+            cmd[int(d.name)] = (d / "cmdline").read_bytes().replace(b"\0", b" ").decode()
         except (OSError, ValueError, IndexError):
             continue
-        if ppid == pid and "spawn_main" in cmd and "resource_tracker" not in cmd:
-            found.append(int(d.name))
-    return found
+    descendants, frontier = set(), {pid}
+    while frontier:
+        frontier = {p for p, pp in parent.items() if pp in frontier} - descendants
+        descendants |= frontier
+    has_children = {pp for pp in parent.values()}
+    return [p for p in descendants if p not in has_children and "resource_tracker" not in cmd.get(p, "")]
 
 
 @pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs /proc to find the workers")
