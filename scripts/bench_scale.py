@@ -1,0 +1,238 @@
+"""Scaling benchmark: cost per site-update against size and threads, peak memory, a 400-Mpx scan.
+
+Run from the repository root::
+
+    python scripts/bench_scale.py                 # everything (the big scan takes minutes)
+    python scripts/bench_scale.py --skip-big      # no 20000 x 20000 scan
+    python scripts/bench_scale.py --big-side 8000 # a smaller "big" scan
+
+Parts
+-----
+1. ns per site-update of one Gibbs sweep, binary (Ising heat bath) and grey
+   (GSM-MRF sweep: scale draws plus a perturbed conjugate-gradient solve), at
+   256², 512², 1024², 2048², with 1 thread and with every numba thread; the
+   spread (max / min over sizes) should stay within 20 % (linear cost).
+   Also the tiled binary sweep, to show the overhead of tiling.
+2. Peak RSS of an untiled binary clean (MPM, parameters estimated), measured
+   in a subprocess from /proc/self/status VmHWM after resetting it, compared
+   with 8x the float32 image size.
+3. A 20000 x 20000 bi-level scan: written band by band as an uncompressed TIFF
+   in a temporary folder (the generator stays within memory), cleaned from the
+   command line with --tile in a subprocess; wall time and the child's peak
+   RSS (resource.getrusage RUSAGE_CHILDREN) are printed against 2 GB.
+
+Timings are the minimum over repeats (other processes share the machine).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+SIZES = (256, 512, 1024, 2048)
+
+
+def _sweep_ns_binary(n, threads, *, tiled=False, repeats=3):
+    import numba
+
+    from mrfclean import kernels
+    from mrfclean.models.binary import BinaryModel, FlipNoise
+    from mrfclean.tiles import RawField, TiledBinaryModel
+
+    numba.set_num_threads(threads)
+    rng = np.random.default_rng(0)
+    img = (rng.random((n, n)) < 0.3).astype(np.uint8) * 255
+    noise = FlipNoise(0.1)
+    if tiled:
+        model = TiledBinaryModel(img, RawField(noise, "flip", 255, np.uint8), coupling=0.8,
+                                 tile=512, field_cache_bytes=0)
+    else:
+        t = np.where(img == 255, 1, -1)
+        model = BinaryModel(noise.field(t), coupling=0.8, start=t)
+    state = model.start(0, 1)
+    sweeps = max(2, int(2e7 // (n * n)))
+    model.sweep(state, 1.0, 7)  # compile and warm up
+    best = np.inf
+    for r in range(repeats):
+        t0 = time.perf_counter()
+        for k in range(sweeps):
+            model.sweep(state, 1.0, int(kernels.stream_key(1, 0, k)))
+            if tiled:
+                model.energy(state)  # computed during the pass; free
+        best = min(best, (time.perf_counter() - t0) / sweeps)
+    return best / (n * n) * 1e9
+
+
+def _sweep_ns_grey(n, threads, *, repeats=2):
+    import numba
+
+    from mrfclean import kernels
+    from mrfclean.models.grey import GreyModel, GSMPrior
+
+    numba.set_num_threads(threads)
+    rng = np.random.default_rng(0)
+    prior = GSMPrior.load()
+    warm = GreyModel(rng.random((32, 32)), variance=0.04, prior=prior)
+    warm.sweep(warm.start(0, 1), 1.0, 7)  # compile on a small image
+    y = (rng.random((n, n)) < 0.3) * 1.0 + rng.normal(0, 0.2, (n, n))
+    model = GreyModel(y, variance=0.04, prior=prior)
+    state = model.start(0, 1)
+    sweeps = max(1, int(2e5 // (n * n)))  # a grey sweep costs ~10 us per pixel
+    repeats = repeats if n <= 512 else 1
+    best = np.inf
+    for r in range(repeats):
+        t0 = time.perf_counter()
+        for k in range(sweeps):
+            model.sweep(state, 1.0, int(kernels.stream_key(1, 0, k)))
+        best = min(best, (time.perf_counter() - t0) / sweeps)
+    return best / (n * n) * 1e9
+
+
+def part_cost(threads_all):
+    rows = []
+    kinds = [("binary", _sweep_ns_binary), ("binary tiled 512", None), ("grey", _sweep_ns_grey)]
+    for name, fn in kinds:
+        for n in SIZES:
+            row = {"model": name, "size": f"{n}x{n}"}
+            for th in (1, threads_all):
+                try:
+                    if name.startswith("binary tiled"):
+                        v = _sweep_ns_binary(n, th, tiled=True)
+                    else:
+                        v = fn(n, th)
+                except Exception as exc:  # grey may not be available
+                    print(f"{name} {n}: not measured ({type(exc).__name__}: {exc})")
+                    v = float("nan")
+                row[f"ns/site {th} thr"] = v
+            rows.append(row)
+            print(f"{name:18s} {n:5d}^2  1 thread {row['ns/site 1 thr']:7.2f} ns/site-update   "
+                  f"{threads_all} threads {row[f'ns/site {threads_all} thr']:7.2f} ns/site-update",
+                  flush=True)
+    print()
+    for name, _ in kinds:
+        for th in (1, threads_all):
+            v = np.array([r[f"ns/site {th} thr"] for r in rows if r["model"] == name])
+            if np.all(np.isfinite(v)):
+                spread = v.max() / v.min()
+                print(f"{name:18s} {th} thread(s): spread max/min over sizes {spread:.3f} "
+                      f"({'within' if spread <= 1.2 else 'OUTSIDE'} 20%)")
+    return rows
+
+
+RSS_CHILD = r"""
+import json, sys, numpy as np, warnings
+warnings.simplefilter("ignore")
+from mrfclean.binary import clean_binary
+n = int(sys.argv[1])
+def status(key):
+    for line in open("/proc/self/status"):
+        if line.startswith(key):
+            return int(line.split()[1]) * 1024
+small = (np.random.default_rng(0).random((64, 64)) < 0.3).astype(np.uint8)
+clean_binary(small, rng=0, burn_in=2, samples=2)   # compile everything first
+rng = np.random.default_rng(1)
+yy, xx = np.mgrid[0:n, 0:n]
+img = ((np.sin(xx / 37.0) + np.cos(yy / 23.0)) > 0.3).astype(np.uint8) * 255
+img = np.where(rng.random((n, n)) < 0.1, 255 - img, img).astype(np.uint8)
+del yy, xx
+base = status("VmRSS")
+open("/proc/self/clear_refs", "w").write("5")   # reset VmHWM to the current RSS
+res = clean_binary(img, rng=0, burn_in=5, samples=10)
+peak = status("VmHWM")
+print(json.dumps({"n": n, "base": base, "peak": peak, "float32_bytes": 4 * n * n}))
+"""
+
+
+def part_rss(n):
+    out = subprocess.run([sys.executable, "-c", RSS_CHILD, str(n)], capture_output=True,
+                         text=True, check=True)
+    d = json.loads(out.stdout.strip().splitlines()[-1])
+    extra = d["peak"] - d["base"]
+    ratio = extra / d["float32_bytes"]
+    print(f"untiled binary MPM clean of {n}x{n} uint8: peak RSS {d['peak'] / 2**20:.0f} MiB, "
+          f"{extra / 2**20:.0f} MiB above the {d['base'] / 2**20:.0f} MiB before cleaning = "
+          f"{ratio:.1f}x the float32 image ({'within' if ratio <= 8 else 'ABOVE'} 8x)")
+    return d
+
+
+def write_big_scan(path, side, *, band=1000, rate=0.1, seed=0):
+    """A bi-level scan written band by band (peak memory: a few bands)."""
+    from mrfclean import io
+
+    rng = np.random.default_rng(seed)
+    with io.tiff_band_writer(path, (side, side), np.uint8, overwrite=True) as w:
+        xx = np.arange(side)[None, :]
+        for r0 in range(0, side, band):
+            r1 = min(r0 + band, side)
+            yy = np.arange(r0, r1)[:, None]
+            clean = ((np.sin(xx / 53.0) * np.cos(yy / 41.0) + np.sin((xx + yy) / 97.0)) > 0.2)
+            flips = rng.random((r1 - r0, side)) < rate
+            w[r0:r1] = np.where(flips ^ clean, 255, 0).astype(np.uint8)
+
+
+def part_big(side, tile, sweeps, keep):
+    tmp = Path(tempfile.mkdtemp(prefix="mrfclean_big_"))
+    src = tmp / "scan.tif"
+    t0 = time.perf_counter()
+    write_big_scan(src, side)
+    t_gen = time.perf_counter() - t0
+    print(f"wrote {side}x{side} uint8 scan ({src.stat().st_size / 2**20:.0f} MiB) in {t_gen:.1f} s")
+    cmd = [sys.executable, "-m", "mrfclean.cli", "clean", str(src), "-o", str(tmp / "out"),
+           "--tile", str(tile), "--estimate", "map", "--sweeps", str(sweeps), "--chains", "1",
+           "-j", "1"]
+    print("running:", " ".join(cmd[2:]), flush=True)
+    t0 = time.perf_counter()
+    proc = subprocess.run(cmd, capture_output=True, text=True)
+    wall = time.perf_counter() - t0
+    import resource
+
+    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024  # kB on Linux
+    print(proc.stdout.strip()[-2000:])
+    if proc.returncode != 0:
+        print(proc.stderr.strip()[-2000:])
+    out = tmp / "out" / "scan.tif"
+    ok = out.exists()
+    print(f"{side}x{side} binary MAP, {sweeps} annealing sweeps, tile {tile}: "
+          f"{wall:.0f} s wall, peak RSS {peak / 2**30:.2f} GiB "
+          f"({'within' if peak <= 2 * 2**30 else 'ABOVE'} 2 GB); output written: {ok}")
+    if not keep:
+        for p in sorted(tmp.rglob("*"), reverse=True):
+            p.unlink() if p.is_file() else p.rmdir()
+        tmp.rmdir()
+    return wall, peak
+
+
+def main(argv=None):
+    p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    p.add_argument("--skip-cost", action="store_true")
+    p.add_argument("--skip-rss", action="store_true")
+    p.add_argument("--skip-big", action="store_true")
+    p.add_argument("--rss-side", type=int, default=4096)
+    p.add_argument("--big-side", type=int, default=20000)
+    p.add_argument("--big-tile", type=int, default=1024)
+    p.add_argument("--big-sweeps", type=int, default=20)
+    p.add_argument("--keep", action="store_true", help="keep the big scan and its result")
+    args = p.parse_args(argv)
+    import numba
+
+    threads = numba.config.NUMBA_NUM_THREADS
+    print(f"numba threads available: {threads}; cores: {os.cpu_count()}")
+    if not args.skip_cost:
+        part_cost(threads)
+    if not args.skip_rss:
+        part_rss(args.rss_side)
+    if not args.skip_big:
+        part_big(args.big_side, args.big_tile, args.big_sweeps, args.keep)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
