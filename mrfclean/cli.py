@@ -247,6 +247,7 @@ def _on_sigterm(signum, frame):
 def run_clean(args) -> int:
     from .batch import run_batch
     from .config import ConfigError, resolve
+    from .pool import ExecutorError
 
     import dataclasses
 
@@ -280,6 +281,11 @@ def run_clean(args) -> int:
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return EXIT_INTERRUPTED
+    except ExecutorError as exc:  # e.g. no scheduler at the address given
+        if args.debug:
+            raise
+        print(str(exc), file=sys.stderr)
+        return EXIT_FAILED
     except OSError as exc:  # the output folder itself cannot be written
         if args.debug:
             raise

@@ -33,7 +33,7 @@ import logging
 import os
 import uuid
 
-from .pool import WorkerLost, set_threads
+from .pool import ExecutorError, WorkerLost, set_threads
 
 
 def _call(fn, item, threads):
@@ -65,7 +65,7 @@ class DaskExecutor:
         try:
             from distributed import Client, LocalCluster
         except ImportError:  # pragma: no cover - the extra is not installed
-            raise RuntimeError("Dask support needs the 'dask' extra: "
+            raise ExecutorError("Dask support needs the 'dask' extra: "
                                "pip install 'mrfclean[dask]'") from None
         self.threads = 1 if threads is None else int(threads)
         self._own_client = client is None
@@ -74,9 +74,10 @@ class DaskExecutor:
             self.client = client
         elif address is not None:
             try:
-                self.client = Client(address, timeout="20s")
-            except OSError as exc:
-                raise RuntimeError(f"cannot reach the Dask scheduler at {address} ({exc})") from None
+                self.client = Client(address, timeout="15s")
+            except (OSError, ValueError, TypeError) as exc:
+                raise ExecutorError(f"{address}: cannot reach the Dask scheduler "
+                                    f"({' '.join(str(exc).split())})") from None
         else:
             n = int(local_workers or 1)
             self._cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,

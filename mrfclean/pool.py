@@ -32,6 +32,10 @@ class WorkerLost(Exception):
     """The process running a task died before returning a result."""
 
 
+class ExecutorError(RuntimeError):
+    """Where the tasks should run cannot be used (unreachable scheduler, missing extra)."""
+
+
 def cpu_count() -> int:
     """Cores this process may use (the affinity mask where the OS has one)."""
     try:
