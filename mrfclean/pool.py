@@ -75,10 +75,36 @@ def _context():
     return multiprocessing.get_context("spawn")
 
 
+def _load_kernels():
+    """Run a tiny clean so the compiled kernels are loaded from numba's cache now."""
+    import warnings
+
+    import numpy as np
+
+    from .clean import Settings, clean
+
+    img = np.zeros((16, 16), np.uint8)
+    img[4:12, 4:12] = 1
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        clean(img, settings=Settings(burn_in=2, samples=2, chains=2), rng=0)
+
+
+def _ping(_):
+    import time
+
+    time.sleep(0.2)  # long enough that each ping lands on a different worker
+    return os.getpid()
+
+
 def _init_worker(threads):
     # Ctrl-C goes to the whole process group; the parent decides what stops.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     set_threads(threads)
+    try:
+        _load_kernels()  # needed before the first image anyway; done while the parent plans
+    except Exception:  # noqa: BLE001 - a real task will report any problem properly
+        pass
 
 
 class InProcess:
@@ -128,6 +154,7 @@ class LocalPool:
             raise ValueError(f"workers must be at least 1, got {workers}")
         self.threads = default_threads(self.workers) if threads is None else int(threads)
         self.max_attempts = int(max_attempts)
+        self._ex = None
 
     def _new_executor(self):
         return cf.ProcessPoolExecutor(max_workers=self.workers, mp_context=_context(),
@@ -150,7 +177,8 @@ class LocalPool:
         pending = list(range(len(items)))[::-1]  # a stack: pop() gives the next in order
         attempts = [0] * len(items)
         window = 2 * self.workers  # bounded submission: 'started' means really started soon
-        ex = self._new_executor()
+        ex = self._ex or self._new_executor()
+        self._ex = None  # held by this run until it ends well
         running: dict[cf.Future, int] = {}
         try:
             while pending or running:
@@ -197,10 +225,16 @@ class LocalPool:
             self._stop(ex)
             raise
         else:
-            ex.shutdown(wait=True)
+            self._ex = ex  # the workers stay up for the next run until close()
+
+    def warm(self) -> None:
+        """Start every worker now (each loads the compiled kernels), e.g. before timing a run."""
+        list(self.run(_ping, [None] * self.workers))
 
     def close(self):
-        pass
+        if self._ex is not None:
+            self._ex.shutdown(wait=True)
+            self._ex = None
 
 
 def make_executor(workers=None, threads=None, *, scheduler=None, local_cluster=None):
