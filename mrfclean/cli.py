@@ -103,7 +103,11 @@ def _positive_float(text):
 # option groups (defaults are None: "not given", so a config file can set them)
 # ---------------------------------------------------------------------------
 def add_model_options(p):
-    """Options shared by every command that cleans (model, sampler, seed)."""
+    """Options shared by every command that cleans (model, sampler, seed).
+
+    An option whose ``dest`` is a :class:`~mrfclean.clean.Settings` field sets that
+    field (flags override the config file); give it ``default=None``.
+    """
     m = p.add_argument_group("model")
     m.add_argument("--kind", choices=KINDS,
                    help="binary or grey model (default auto: binary for two-level images)")
