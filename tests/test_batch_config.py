@@ -25,7 +25,7 @@ def test_every_batch_option_has_a_check_and_a_flag():
     dests = {a.dest for a in build_parser()._subparsers._group_actions[0].choices["clean"]._actions}
     assert fields <= dests
     # every Settings field can be set on the command line too
-    assert {f.name for f in dataclasses.fields(Settings)} - {"uncertainty"} <= dests | {"stack", "tile"}
+    assert {f.name for f in dataclasses.fields(Settings)} - {"uncertainty"} <= dests
 
 
 def test_file_values_flags_override_and_sources(tmp_path):
