@@ -245,9 +245,12 @@ def image_seed(run_seed: int, relpath: str) -> int:
     return int.from_bytes(digest, "little") & (2**63 - 1)
 
 
-def find_reference(reference_dir, relpath: str) -> Path | None:
+def find_reference(reference_dir, relpath: str, *, names: dict | None = None) -> Path | None:
     """The reference for an input: same relative path, else same name with any image suffix,
-    else the only file in the reference tree with that name."""
+    else the only file in the reference tree with that stem.
+
+    ``names`` (from :func:`reference_names`) saves walking the tree for every image.
+    """
     root = Path(reference_dir)
     rel = PurePosixPath(relpath)
     direct = root.joinpath(*rel.parts)
@@ -257,9 +260,19 @@ def find_reference(reference_dir, relpath: str) -> Path | None:
         cand = direct.with_suffix(suffix)
         if cand.is_file():
             return cand
-    stems = {rel.stem + s for s in io.IMAGE_SUFFIXES}
-    found = [f for f in root.rglob("*") if f.name in stems and f.is_file()]
+    if names is None:
+        names = reference_names(root)
+    found = names.get(rel.stem, [])
     return found[0] if len(found) == 1 else None
+
+
+def reference_names(reference_dir) -> dict[str, list[Path]]:
+    """Image files under a reference folder, by stem."""
+    out: dict[str, list[Path]] = {}
+    for f in sorted(Path(reference_dir).rglob("*")):
+        if f.is_file() and _is_image_name(f.name):
+            out.setdefault(f.stem, []).append(f)
+    return out
 
 
 # ---------------------------------------------------------------------------
@@ -488,6 +501,7 @@ def run_batch(inputs, outdir, *, settings: Settings | None = None,
     plan = []  # (item, task, key, started-entry)
     settled: dict[str, dict] = {}
     ref_root = Path(options.reference) if options.reference else None
+    ref_names = None
     for item in collected.items:
         seed = image_seed(options.seed, item.relpath)
         common = {"type": "image", "relpath": item.relpath, "input": str(item.path),
@@ -499,7 +513,9 @@ def run_batch(inputs, outdir, *, settings: Settings | None = None,
             manifest.append(entry)
             settled[item.relpath] = entry
             continue
-        reference = find_reference(ref_root, item.relpath) if ref_root else None
+        if ref_root is not None and ref_names is None:
+            ref_names = reference_names(ref_root)
+        reference = find_reference(ref_root, item.relpath, names=ref_names) if ref_root else None
         ref_hash = file_hash(reference) if reference is not None else None
         task = Task(str(item.path), item.relpath, str(outroot), settings, seed, options.maps,
                     options.colour, options.max_pixels, options.overwrite,
@@ -712,10 +728,11 @@ def score_folders(cleaned, reference, *, recursive=False, data_range=None,
     failures, pairs = [], []
     if cleaned.is_dir() and reference.is_dir():
         collected = collect_inputs([cleaned], recursive=recursive)
+        names = reference_names(reference)
         for item in collected.items:
             if item.relpath.endswith(MAP_SUFFIXES):
                 continue
-            ref = find_reference(reference, item.relpath)
+            ref = find_reference(reference, item.relpath, names=names)
             if ref is None:
                 failures.append((str(item.path), f"no reference in {reference}"))
             else:
