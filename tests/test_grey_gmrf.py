@@ -1,0 +1,153 @@
+"""Greyscale sampler against exact Gaussian-MRF results.
+
+With a single-scale (quadratic) prior and Gaussian noise the posterior is the
+Gaussian MRF ``N(Q^-1 b, Q^-1)`` with ``Q = I / sigma^2 + sum_o lambda D_o^T D_o``
+and ``b = y / sigma^2`` (Rue & Held 2005, ch. 2).  The references are computed
+in the tests with scipy.sparse (matrix, solve) and a dense inverse (marginal
+variances ``diag Q^-1``).
+"""
+
+import numba
+import numpy as np
+import pytest
+import scipy.sparse as sp
+import scipy.sparse.linalg as sla
+
+from mrfclean import kernels, sampler
+from mrfclean.models.grey import GreyModel, GSMPrior
+
+
+def difference_matrices(shape, offsets):
+    """Sparse ``D_o`` (rows: cliques ``(p, p + o)`` inside the lattice; ``+1`` at ``p + o``)."""
+    Z, H, W = shape
+    idx = np.arange(Z * H * W).reshape(shape)
+    out = []
+    for dz, di, dj in offsets:
+        zz, ii, jj = np.meshgrid(np.arange(Z), np.arange(H), np.arange(W), indexing="ij")
+        ok = (zz + dz < Z) & (ii + di < H) & (jj + dj >= 0) & (jj + dj < W)
+        p = idx[zz[ok], ii[ok], jj[ok]]
+        q = idx[zz[ok] + dz, ii[ok] + di, jj[ok] + dj]
+        m = p.size
+        rows = np.r_[np.arange(m), np.arange(m)]
+        out.append((ok, sp.csr_matrix((np.r_[np.ones(m), -np.ones(m)], (rows, np.r_[q, p])),
+                                      shape=(m, Z * H * W))))
+    return out
+
+
+def sparse_precision(model, weights):
+    """``Q`` assembled from the clique weights the model uses, plus its data precision."""
+    Q = sp.diags(model.dw.ravel())
+    for (ok, D), w in zip(difference_matrices(model.grid.shape, model.offsets), weights):
+        Q = Q + D.T @ sp.diags(w[ok]) @ D
+    return Q.tocsc()
+
+
+@pytest.mark.parametrize("shape, neighbourhood", [((1, 12, 13), "20"), ((3, 7, 9), "8")])
+def test_operator_matches_sparse_matrix(shape, neighbourhood):
+    """Matrix-free ``Q x`` and ``diag Q`` equal the assembled sparse matrix (round-off only)."""
+    gen = np.random.default_rng(11)
+    prior = GSMPrior.quadratic(1.0, neighbourhood=neighbourhood, strength_z=0.5)
+    m = GreyModel(gen.normal(size=shape), variance=gen.uniform(0.5, 2, size=shape), prior=prior)
+    w = gen.uniform(0.1, 3.0, size=m.w.shape)
+    x = gen.normal(size=shape)
+    Q = sparse_precision(m, w)
+    np.testing.assert_allclose(m.apply(x, w).ravel(), Q @ x.ravel(), rtol=1e-12, atol=1e-12)
+    m.w[...] = w
+    m._set_operator()
+    np.testing.assert_allclose(m._diag.ravel(), Q.diagonal(), rtol=1e-12)
+
+
+def test_normal_variates_moments():
+    """Box-Muller normals from the counter RNG: mean 0, variance 1, kurtosis 3.
+
+    n = 400000: standard errors are 1/sqrt(n) = 0.0016 (mean), sqrt(2/n) =
+    0.0022 (variance) and sqrt(96/n) = 0.0155 (kurtosis); tolerances are 5 of them.
+    """
+    z = kernels.normal_many(np.uint64(kernels.stream_key(5, 0, 0)), 0, 400_000)
+    assert abs(z.mean()) < 0.008
+    assert abs(z.var() - 1) < 0.011
+    assert abs(np.mean(z**4) / z.var() ** 2 - 3) < 0.08
+
+
+@pytest.fixture(scope="module")
+def gmrf_case():
+    gen = np.random.default_rng(2024)
+    H = W = 32
+    sigma2, lam = 0.5, 3.0
+    y = gen.normal(size=(H, W))
+    prior = GSMPrior.quadratic(lam, neighbourhood="8")
+    model = GreyModel(y, variance=sigma2, prior=prior, tol=1e-9)
+    Q = sparse_precision(model, np.broadcast_to(lam, model.w.shape))
+    mean = sla.spsolve(Q, y.ravel() / sigma2)
+    var = np.diag(np.linalg.inv(Q.toarray()))
+    return model, mean, var
+
+
+@pytest.mark.slow
+def test_posterior_mean_and_variance_match_exact_gmrf(gmrf_case):
+    """Sampled moments against ``Q^-1 b`` and ``diag Q^-1`` (exact, scipy in the test).
+
+    Mean: with one scale the Rao-Blackwellised mean is ``Q^-1 b`` at every sweep,
+    so only the solver tolerance (1e-9 relative residual) separates it from the
+    sparse solve: 1e-6 absolute.  Variance: S = 2000 kept sweeps of exact
+    independent draws; ``(x - mu)^2 / var`` is a chi-square(1) variable with
+    relative sd sqrt(2 / S) = 0.032 per pixel, so the average ratio over the
+    1024 pixels has sd 0.032 / sqrt(1024) = 0.001 (neighbours are correlated,
+    at most a few times that): tolerance 0.01.  Per pixel, the worst of 1024
+    ratios stays within 5 sd = 0.16.
+    """
+    model, mean, var = gmrf_case
+    run = sampler.run(model, sweeps=2010, burn_in=10, seed=7, tally=True)
+    np.testing.assert_allclose(run.tally.mean64().ravel(), mean, atol=1e-6)
+    ratio = run.tally.var64().ravel() / var
+    assert abs(ratio.mean() - 1) < 0.01
+    assert np.abs(ratio - 1).max() < 0.16
+
+
+def test_short_run_variance_close_to_exact(gmrf_case):
+    """A 300-sweep run: mean ratio of sampled to exact variance within 0.03.
+
+    sd of the average ratio: sqrt(2/300)/sqrt(1024) = 0.0026, times a few for
+    correlation between neighbouring pixels; 0.03 is over 5 of those.
+    """
+    model, mean, var = gmrf_case
+    run = sampler.run(model, sweeps=305, burn_in=5, seed=8, tally=True)
+    np.testing.assert_allclose(run.tally.mean64().ravel(), mean, atol=1e-6)
+    assert abs((run.tally.var64().ravel() / var).mean() - 1) < 0.03
+
+
+def test_sweep_independent_of_thread_count():
+    """Counter-based random numbers and ordered row sums: 1 thread and 2 threads agree bit for bit."""
+    gen = np.random.default_rng(3)
+    y = gen.normal(size=(2, 40, 37))
+    prior = GSMPrior.load()
+
+    def go():
+        m = GreyModel(y, variance=0.3, prior=prior)
+        st = m.start(0, 1)
+        for k in range(3):
+            m.sweep(st, 1.0, int(kernels.stream_key(9, 0, k)))
+        return st.x.copy(), m.energy(st)
+
+    before = numba.get_num_threads()
+    try:
+        numba.set_num_threads(1)
+        a, ea = go()
+        numba.set_num_threads(max(before, 2) if numba.config.NUMBA_NUM_THREADS >= 2 else 1)
+        b, eb = go()
+    finally:
+        numba.set_num_threads(before)
+    assert np.array_equal(a, b)
+    assert ea == eb
+
+
+def test_zero_temperature_sweep_is_the_conditional_mean():
+    """At T = 0 the image update adds no perturbation: ``x = Q^-1 b`` for the chosen scales."""
+    gen = np.random.default_rng(4)
+    y = gen.normal(size=(16, 16))
+    m = GreyModel(y, variance=0.2, prior=GSMPrior.load(), tol=1e-10)
+    st = m.start(0, 1)
+    m.sweep(st, 0.0, 12345)
+    Q = sparse_precision(m, m.w)
+    np.testing.assert_allclose(st.x.ravel(), sla.spsolve(Q, m.b.ravel()), atol=1e-7)
+    assert np.array_equal(st.x, st.mu)
