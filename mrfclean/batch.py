@@ -39,7 +39,7 @@ import numpy as np
 from . import __version__, io
 from .clean import Settings, clean_file, output_paths
 from .diagnostics import ChainsDisagree
-from .manifest import (Manifest, ManifestIndex, entry_key, file_hash, jsonable,
+from .manifest import (MANIFEST_NAME, Manifest, ManifestIndex, entry_key, file_hash, jsonable,
                        latest_by_image)
 from .pool import InProcess, WorkerLost, cpu_count, make_executor
 
@@ -489,6 +489,41 @@ def run_batch(inputs, outdir, *, settings: Settings | None = None,
         summary.failed += 1
         say(f"{spec}: {message}", True)
 
+    lock = _lock_folder(outroot)  # one batch at a time per output folder
+    try:
+        return _run_locked(inputs, collected, outroot, summary, settings, options, executor,
+                           say, config, t0, started_at)
+    finally:
+        lock.close()
+
+
+class FolderBusy(RuntimeError):
+    """Another batch is writing to the same output folder."""
+
+
+def _lock_folder(outroot: Path):
+    """Hold an exclusive lock on the folder's manifest for this process.
+
+    An advisory ``flock``: it does not block the appends (which need no lock,
+    see :mod:`mrfclean.manifest`), only a second batch.  The kernel releases
+    it when the process ends, however it ends.
+    """
+    fh = open(outroot / MANIFEST_NAME, "ab")
+    try:
+        import fcntl
+
+        fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except ImportError:  # pragma: no cover - not POSIX: no lock, as before
+        return fh
+    except OSError:
+        fh.close()
+        raise FolderBusy(f"{outroot}: another mrfclean batch is writing to this folder; "
+                         "wait for it or choose another folder") from None
+    return fh
+
+
+def _run_locked(inputs, collected, outroot, summary, settings, options, executor, say, config,
+                t0, started_at):
     manifest = Manifest(outroot)
     index = ManifestIndex(manifest.read(), outroot)
     manifest.append({"type": "run", "version": __version__,

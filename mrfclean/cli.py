@@ -249,7 +249,7 @@ def _on_sigterm(signum, frame):
 
 
 def run_clean(args) -> int:
-    from .batch import run_batch
+    from .batch import FolderBusy, run_batch
     from .config import ConfigError, resolve
     from .pool import ExecutorError
 
@@ -285,7 +285,7 @@ def run_clean(args) -> int:
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return EXIT_INTERRUPTED
-    except ExecutorError as exc:  # e.g. no scheduler at the address given
+    except (ExecutorError, FolderBusy) as exc:  # no scheduler there; another run in OUTDIR
         if args.debug:
             raise
         print(str(exc), file=sys.stderr)

@@ -285,3 +285,34 @@ def test_score_folders(tmp_path, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert err == [f"{tmp_path / 'noisy' / 'lonely.png'}: no reference in {tmp_path / 'ref'}"]
 
+
+
+def test_second_batch_into_the_same_folder_is_refused(tmp_path, capsys):
+    import subprocess
+    import sys
+    import time
+
+    _tree(tmp_path / "in", ["a.png"])
+    (tmp_path / "out").mkdir()
+    # another process holds the folder (as a running batch does) ...
+    holder = subprocess.Popen([sys.executable, "-c", (
+        "import fcntl, sys, time\n"
+        f"fh = open({str(tmp_path / 'out' / 'manifest.jsonl')!r}, 'ab')\n"
+        "fcntl.flock(fh.fileno(), fcntl.LOCK_EX)\n"
+        "print('locked', flush=True)\n"
+        "time.sleep(60)\n")], stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "locked"
+        rc = main(["clean", str(tmp_path / "in"), "-o", str(tmp_path / "out"), *FAST_FLAGS])
+    finally:
+        holder.kill()
+        holder.wait()
+        holder.stdout.close()
+    assert rc == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "another mrfclean batch is writing to this folder" in err[0]
+    assert not (tmp_path / "out" / "a.png").exists()
+    # ... and once it has gone, the batch runs
+    t0 = time.monotonic()
+    assert main(["clean", str(tmp_path / "in"), "-o", str(tmp_path / "out"), *FAST_FLAGS]) == 0
+    assert time.monotonic() - t0 < 60 and (tmp_path / "out" / "a.png").is_file()
