@@ -156,8 +156,8 @@ def clean_binary(image, *, method="mpm", noise="auto", coupling="auto", coupling
         record_posterior(diag, post)
         params.update(burn_in=burn_in, samples=samples)
         if method == "mpm":
-            spins = np.where(mean > 0.5, 1, -1).astype(np.int8)
-            diag.final_energy = model.energy_of(spins)
+            spins = np.where(mean > 0.5, np.int8(1), np.int8(-1))
+            diag.final_energy = model.energy_of_spins(spins)
             energy, temps = post.run.energies, post.run.temperatures
     if certify:
         from .exact import exact_map

@@ -79,7 +79,7 @@ def is_bilevel(image) -> bool:
 
 def spins_from_levels(image, high) -> np.ndarray:
     """+1 where ``image == high``, -1 elsewhere (int8)."""
-    return np.where(np.asarray(image) == high, 1, -1).astype(np.int8)
+    return np.where(np.asarray(image) == high, np.int8(1), np.int8(-1))
 
 
 def levels_from_spins(spins, low, high, dtype) -> np.ndarray:

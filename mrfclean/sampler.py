@@ -174,29 +174,23 @@ def run(model: ChainModel, *, schedule: Schedule | None = None, sweeps: int, cha
         raise ValueError(f"chains must be at least 1, got {chains}")
     energies = np.empty((chains, sweeps))
     summaries = np.empty((chains, sweeps - burn_in))
-    total = None
+    total = model.tally() if tally else None  # one tally for all chains: memory of one
     states, passes, finals = [], [], []
     with progress_bar(total=chains * sweeps, enabled=progress, desc=label) as bar, \
             kernel_threads(model.grid.size):
         for c in range(chains):
-            t = model.tally() if tally else None
             last = None
             for st in iterate(model, schedule, sweeps=sweeps, chain=c, seed=seed, burn_in=burn_in):
                 energies[c, st.sweep] = st.energy
                 if st.sampling:
                     summaries[c, st.sweep - burn_in] = model.summary(st.state)
-                    if t is not None:
-                        t.add(st.state)
+                    if total is not None:
+                        total.add(st.state)
                 last = st
                 bar.update(1)
             state = last.state
             passes.append(model.quench(state) if quench else 0)
             finals.append(model.energy(state) if quench else last.energy)
             states.append(state)
-            if t is not None:
-                if total is None:
-                    total = t
-                else:
-                    total.merge(t)
     return ChainRun(states, energies, schedule.temperatures(sweeps), summaries, total, passes,
                     np.asarray(finals))

@@ -52,6 +52,7 @@ from . import kernels
 from . import levels as lv
 from .estimates import CleanResult, Diagnostics, anneal, record_posterior, sample_posterior
 from .lattice import Grid
+from .models.binary import bernoulli_std, on_fraction
 from .sampler import START_SWEEP, ChainModel, Tally, to_seed
 
 #: Smallest tile side accepted.
@@ -224,7 +225,7 @@ class SharedSpinTally(Tally):
         Z, H, W = grid.shape
         band = Grid((Z, r1 - r0, W), origin=(0, r0, 0), full_shape=grid.shape)
         packed = np.ascontiguousarray(self.counts[:, :, r0:r1 + 2, :])
-        return (band.unpack(packed) / max(self.n, 1)).astype(np.float32)
+        return on_fraction(band.unpack(packed, np.float32), self.n)
 
     def mean(self):  # pragma: no cover - whole-image use goes through mean_rows
         raise NotImplementedError("use mean_rows on a tiled tally")
@@ -605,15 +606,14 @@ def clean_binary_tiled(image, *, tile=DEFAULT_TILE, method="mpm", noise="auto", 
         if method == "map":
             spins = model.image_rows(best, b0, b1)
         else:
-            spins = np.where(p > 0.5, 1, -1).astype(np.int8)
+            spins = np.where(p > 0.5, np.int8(1), np.int8(-1))
         est = lv.levels_from_spins(spins, low, high, rows.dtype)
         _put(out, rows.flat, b0, b1, est)
         if sampled:
             if "p_on" in maps:
                 _put(maps["p_on"], rows.flat, b0, b1, p)
             if "std" in maps:
-                pd = p.astype(np.float64)
-                _put(maps["std"], rows.flat, b0, b1, np.sqrt(pd * (1.0 - pd)).astype(np.float32))
+                _put(maps["std"], rows.flat, b0, b1, bernoulli_std(p))
         if method == "mpm":
             e, above = _band_energy_of(model, spins, b0, b1, above)
             mpm_energy += e

@@ -31,8 +31,9 @@ import numpy as np
 from scipy import optimize
 
 from .. import kernels
+from ..lattice import Grid
 from ..sampler import kernel_threads
-from ..models.binary import BinaryModel, FlipNoise, TwoLevelGaussian, neighbour_sums
+from ..models.binary import BinaryModel, FlipNoise, TwoLevelGaussian
 
 #: Bounds of estimated parameters (an all-equal image would otherwise drive the
 #: coupling to infinity and the flip rate to zero).
@@ -57,13 +58,14 @@ class CouplingStats:
         self.counts = np.zeros((9, 5), dtype=np.int64)  # a in -4..4, c in -2..2
 
     def add(self, spins, boundary="free"):
+        """Count one configuration given in image layout ``(H, W)`` or ``(Z, H, W)``."""
         s = np.asarray(spins, dtype=np.int8)
-        s = s.reshape((1, *s.shape)) if s.ndim == 2 else s
-        s16 = s.astype(np.int16)
-        n, m = neighbour_sums(s16, periodic=boundary == "periodic")
-        a = (s16 * n + 4).ravel()
-        c = (s16 * m + 2).ravel()
-        self.counts += np.bincount(a * 5 + c, minlength=45).reshape(9, 5)
+        grid = Grid.for_image(s, boundary=boundary)
+        return self.add_packed(grid.pack(s, np.int8), grid)
+
+    def add_packed(self, state, grid):
+        """Count one configuration in the kernels' packed layout (no image-sized temporaries)."""
+        kernels.coupling_counts(state, grid.shape[2], grid.parity, self.counts)
         return self
 
     def neg_log_pl(self, b, bz=0.0):
@@ -172,33 +174,48 @@ class BinaryFit:
         return d
 
 
-def _noise_from_stats(kind, observed, spins_stack, fixed):
-    """Exact M-step of the data term given sampled spins."""
-    if kind == "flip":
-        if fixed is not None:
-            return fixed
-        mismatch = np.mean([np.mean(s != observed) for s in spins_stack])
-        return FlipNoise(float(np.clip(mismatch, FLIP_RATE_MIN, FLIP_RATE_MAX)))
-    if fixed is not None:
-        return fixed
-    y = observed
-    on_sum = off_sum = on_n = off_n = sq = 0.0
-    for s in spins_stack:
-        on = s > 0
-        on_n += on.sum()
-        off_n += (~on).sum()
-        on_sum += y[on].sum()
-        off_sum += y[~on].sum()
-    if on_n == 0 or off_n == 0:
-        return None
-    high, low = on_sum / on_n, off_sum / off_n
-    for s in spins_stack:
-        mu = np.where(s > 0, high, low)
-        sq += np.sum((y - mu) ** 2)
-    sigma = math.sqrt(sq / (len(spins_stack) * y.size))
-    if high <= low or sigma <= 0:
-        return None
-    return TwoLevelGaussian(float(low), float(high), float(sigma))
+class NoiseStats:
+    """Sufficient statistics of the data term over sampled spins (streamed, no stored samples).
+
+    Flip noise: the number of sites where the spins disagree with the observed
+    ones.  Two-level Gaussian: count, sum and sum of squares of the intensities
+    under "on" and under "off".
+    """
+
+    def __init__(self, kind, observed, grid):
+        self.kind, self.grid, self.n = kind, grid, 0
+        if kind == "flip":
+            self.packed_observed = grid.pack(observed, np.int8)
+            self.mismatch = 0
+        else:
+            self.y = np.asarray(observed, dtype=np.float32).reshape(grid.shape)
+            self.moments = np.zeros((2, 3))  # [off, on] x [count, sum, sum of squares]
+
+    def add(self, state, model):
+        self.n += 1
+        if self.kind == "flip":
+            self.mismatch += int(kernels.count_mismatch(state, self.packed_observed,
+                                                        self.grid.shape[2], self.grid.parity))
+            return
+        on = model.image(state) > 0
+        for k, mask in ((1, on), (0, ~on)):
+            self.moments[k] += (np.count_nonzero(mask), np.sum(self.y, where=mask, dtype=np.float64),
+                                np.sum(np.square(self.y, dtype=np.float64), where=mask))
+
+    def fit(self):
+        """Exact M-step for the data term given the samples; ``None`` if degenerate."""
+        if self.kind == "flip":
+            rate = self.mismatch / (self.n * self.grid.size)
+            return FlipNoise(float(np.clip(rate, FLIP_RATE_MIN, FLIP_RATE_MAX)))
+        (n0, s0, q0), (n1, s1, q1) = self.moments
+        if n0 == 0 or n1 == 0:
+            return None
+        low, high = s0 / n0, s1 / n1
+        sse = (q0 - s0 * low) + (q1 - s1 * high)  # sum (y - mean)^2 within each class
+        sigma = math.sqrt(max(sse, 0.0) / (n0 + n1))
+        if high <= low or sigma <= 0:
+            return None
+        return TwoLevelGaussian(float(low), float(high), float(sigma))
 
 
 def _majority_flip_rate(spins):
@@ -207,8 +224,8 @@ def _majority_flip_rate(spins):
 
     s = np.asarray(spins, dtype=np.float32)
     size = (1, 3, 3) if s.ndim == 3 else 3
-    majority = np.where(uniform_filter(s, size=size, mode="nearest") >= 0, 1, -1)
-    return float(np.clip(np.mean(majority != s), 0.01, FLIP_RATE_MAX))
+    disagree = (uniform_filter(s, size=size, mode="nearest") >= 0) != (s > 0)
+    return float(np.clip(np.mean(disagree), 0.01, FLIP_RATE_MAX))
 
 
 def fit_binary(observed, *, noise: str, coupling="auto", coupling_z="auto", flip_rate="auto",
@@ -259,23 +276,24 @@ def fit_binary(observed, *, noise: str, coupling="auto", coupling_z="auto", flip
     beta = beta_fixed if beta_fixed is not None else START_COUPLING
     beta_z = betaz_fixed if betaz_fixed is not None else beta
     history = []
-    state = None
     if beta_fixed is not None and fixed is not None and (betaz_fixed is not None or not planes):
         return BinaryFit(beta, beta_z, term, history)
+    grid = Grid.for_image(y, boundary=boundary)
     with kernel_threads(y.size):
+        model = BinaryModel(term.field(y), coupling=beta, coupling_z=beta_z, grid=grid)
+        state = model.start(0, seed)
         for r in range(rounds):
-            model = BinaryModel(term.field(y), coupling=beta, coupling_z=beta_z, boundary=boundary)
-            if state is None:
-                state = model.start(0, seed)
-            stack = []
+            if r:
+                model.set_field(term.field(y))
+                model.coupling, model.coupling_z = beta, beta_z
             stats = CouplingStats()
+            noise_stats = NoiseStats(noise, y, grid)
             for k in range(burn_in + samples):
                 model.sweep(state, 1.0, int(kernels.stream_key(seed, 0, r * 1000 + k)))
                 if k >= burn_in:
-                    s = model.image(state)
-                    stack.append(s)
-                    stats.add(s, boundary)
-            new_term = _noise_from_stats(noise, y, stack, fixed)
+                    stats.add_packed(state, grid)
+                    noise_stats.add(state, model)
+            new_term = fixed or noise_stats.fit()
             if new_term is not None:
                 term = new_term
             b, bz = stats.fit(planes=planes)

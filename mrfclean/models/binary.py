@@ -80,8 +80,8 @@ class FlipNoise:
 
     def field(self, observed):
         """Local fields ``h = 1/2 ln((1-p)/p) t`` for observed spins ``t``."""
-        t = np.asarray(observed, dtype=np.float64)
-        return 0.5 * math.log((1.0 - self.flip_rate) / self.flip_rate) * t
+        t = np.asarray(observed, dtype=np.float32)
+        return np.float32(0.5 * math.log((1.0 - self.flip_rate) / self.flip_rate)) * t
 
     def log_likelihood(self, spins, observed):
         """``sum_i log P(t_i | s_i)``."""
@@ -108,9 +108,14 @@ class TwoLevelGaussian:
             raise ValueError(f"sigma must be positive, got {self.sigma!r}")
 
     def field(self, observed):
-        """``h = ((y - low)^2 - (y - high)^2) / (4 sigma^2)``."""
-        y = np.asarray(observed, dtype=np.float64)
-        return ((y - self.low) ** 2 - (y - self.high) ** 2) / (4.0 * self.sigma**2)
+        """``h = ((y - low)^2 - (y - high)^2) / (4 sigma^2) = (high - low) (y - (low + high)/2) / (2 sigma^2)``.
+
+        Returned as float32 (what the model stores), computed in the second,
+        cancellation-free form.
+        """
+        y = np.asarray(observed, dtype=np.float32)
+        slope = np.float32((self.high - self.low) / (2.0 * self.sigma**2))
+        return slope * (y - np.float32(0.5 * (self.low + self.high)))
 
     def log_likelihood(self, spins, observed):
         """``sum_i log N(y_i; mu(s_i), sigma^2)``."""
@@ -124,12 +129,26 @@ class TwoLevelGaussian:
                 "sigma": float(self.sigma)}
 
 
+def on_fraction(counts, n):
+    """``counts / n`` as float32, in place when ``counts`` is float32 (one rule for all tallies)."""
+    p = np.asarray(counts, dtype=np.float32)
+    p /= np.float32(max(n, 1))
+    return p
+
+
+def bernoulli_std(p):
+    """``sqrt(p (1 - p))`` in float32, the standard deviation of an indicator with mean ``p``."""
+    q = np.array(p, dtype=np.float32)
+    q *= np.float32(1.0) - q
+    return np.sqrt(q, out=q)
+
+
 class SpinTally(Tally):
     """Counts of "on" per site over kept sweeps: posterior marginals P(s_i = +1)."""
 
     def __init__(self, grid: Grid):
         self.grid = grid
-        self.counts = np.zeros(grid.packed_shape, dtype=np.int64)
+        self.counts = np.zeros(grid.packed_shape, dtype=np.int32)
         self.n = 0
 
     def add(self, state):
@@ -142,12 +161,11 @@ class SpinTally(Tally):
 
     def mean(self):
         """P(on) per pixel, float32 ``(Z, H, W)``."""
-        return (self.grid.unpack(self.counts) / max(self.n, 1)).astype(np.float32)
+        return on_fraction(self.grid.unpack(self.counts, np.float32), self.n)
 
     def std(self):
         """Posterior standard deviation of the on-indicator, ``sqrt(p (1 - p))``."""
-        p = self.mean().astype(np.float64)
-        return np.sqrt(p * (1.0 - p)).astype(np.float32)
+        return bernoulli_std(self.mean())
 
 
 class BinaryModel(ChainModel):
@@ -179,18 +197,29 @@ class BinaryModel(ChainModel):
                  grid: Grid | None = None):
         h = np.asarray(field, dtype=np.float32)
         self.grid = grid or Grid.for_image(h, boundary=boundary)
-        self.h = h.reshape(self.grid.shape)
-        if not np.all(np.isfinite(self.h)):
-            raise ValueError("local fields must be finite")
+        self.set_field(h)
         self.coupling = float(coupling)
         self.coupling_z = self.coupling if coupling_z is None else float(coupling_z)
         for name, v in (("coupling", self.coupling), ("coupling_z", self.coupling_z)):
             if not math.isfinite(v):
                 raise ValueError(f"{name} must be finite, got {v}")
-        self.packed_field = self.grid.pack(self.h, np.float32)
         if start is None:
-            start = np.where(self.h >= 0, 1, -1)
+            start = np.where(h >= 0, np.int8(1), np.int8(-1))
         self.start_spins = np.asarray(start, dtype=np.int8).reshape(self.grid.shape)
+
+    def set_field(self, field):
+        """Replace the local fields (kept only in the kernels' packed layout, float32)."""
+        h = np.asarray(field, dtype=np.float32)
+        if h.size != self.grid.size:
+            raise ValueError(f"field of shape {h.shape} does not fit a grid of shape {self.grid.shape}")
+        if not np.all(np.isfinite(h)):
+            raise ValueError("local fields must be finite")
+        self.packed_field = self.grid.pack(h.reshape(self.grid.shape), np.float32)
+
+    @property
+    def h(self) -> np.ndarray:
+        """Local fields in image layout ``(Z, H, W)``, float32 (a new array)."""
+        return self.grid.unpack(self.packed_field)
 
     # --- ChainModel -----------------------------------------------------------------
     def start(self, chain, seed):
@@ -238,14 +267,22 @@ class BinaryModel(ChainModel):
         return s
 
     def energy_of(self, spins) -> float:
-        """Energy of a configuration given in image layout (plain numpy, float64)."""
+        """Energy of a configuration given in image layout (plain numpy, float64).
+
+        A reference for tests; :meth:`energy_of_spins` computes the same with the
+        kernel and little memory.
+        """
         s = self._as_spins(spins).astype(np.float64)
+        h = self.h.astype(np.float64)
         pair = np.sum(s[:, 1:, :] * s[:, :-1, :]) + np.sum(s[:, :, 1:] * s[:, :, :-1])
         if self.grid.periodic:
             pair += np.sum(s[:, 0, :] * s[:, -1, :]) + np.sum(s[:, :, 0] * s[:, :, -1])
         zpair = np.sum(s[1:] * s[:-1])
-        return float(-self.coupling * pair - self.coupling_z * zpair
-                     - np.sum(self.h.astype(np.float64) * s))
+        return float(-self.coupling * pair - self.coupling_z * zpair - np.sum(h * s))
+
+    def energy_of_spins(self, spins) -> float:
+        """Energy of an image-layout configuration by the kernel (for large images)."""
+        return self.energy(self.grid.pack(self._as_spins(spins), np.int8))
 
     def local_field_of(self, spins) -> np.ndarray:
         """``F_i = beta (neighbour sum) + beta_z (z neighbour sum) + h_i`` for every site."""
