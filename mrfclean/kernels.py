@@ -427,3 +427,378 @@ def count_mismatch(P, T, W, q):
                 acc += a[t] != b[t]
         part[r] = acc
     return part.sum()
+
+# ===========================================================================
+# greyscale: Gaussian-MRF operator and Gaussian-scale-mixture scale draws
+# ===========================================================================
+# Layout: images are C-contiguous ``(Z, H, W)`` arrays in image order.  A
+# clique is a pair ``(p, p + o)`` for an offset ``o = (dz, di, dj)`` taken
+# from one half of the neighbourhood (``offsets`` is an ``(n, 3)`` int64
+# array); its weight lives at ``w[o, p]`` and is ignored when ``p + o`` falls
+# outside the lattice (free boundary).  The difference of a clique is
+# ``d = x[p + o] - x[p]``.  Every kernel works row by row (one row is a fixed
+# ``(z, i)``) and writes only its own row, so rows run in parallel without
+# races; reductions keep one partial sum per row and add them in order, so
+# results do not depend on the number of threads.
+#
+# Random numbers: the categorical draw of clique ``(o, p)`` uses counter
+# ``o * N + p`` of the sweep's key (``N = Z H W``); the perturbation normals use
+# a second key derived from it, counters ``2 (o * N + p)`` and ``+ 1`` for the
+# clique normal (o = 0 .. n-1) and ``2 (n N + p)``, ``+ 1`` for the data normal.
+
+_GREY_NOISE_SALT = np.uint64(0x6A09E667F3BCC909)
+_TWO_PI = 6.283185307179586
+
+
+@njit(cache=True)
+def derive_key(key, salt):
+    """A second independent stream key from ``key`` (for the Gaussian draws of a sweep)."""
+    return mix64(uint64(key) ^ mix64(uint64(salt)))
+
+
+@njit(inline="always", cache=True)
+def normal(key, counter):
+    """Standard normal variate for ``counter`` of stream ``key`` (Box-Muller, cosine branch).
+
+    Uses counters ``2 counter`` and ``2 counter + 1`` of :func:`uniform`; ``1 - u``
+    keeps the logarithm finite.
+    """
+    u1 = 1.0 - uniform(key, 2 * counter)
+    u2 = uniform(key, 2 * counter + 1)
+    return np.sqrt(-2.0 * np.log(u1)) * np.cos(_TWO_PI * u2)
+
+
+@njit(cache=True)
+def normal_many(key, start, n):
+    """``n`` normals at counters ``start .. start + n - 1``, for tests."""
+    out = np.empty(n)
+    for k in range(n):
+        out[k] = normal(key, start + k)
+    return out
+
+
+@njit(inline="always", cache=True)
+def _span(d, n):
+    """Indices ``j`` in ``[0, n)`` with ``j + d`` also in ``[0, n)``: ``range(lo, hi)``."""
+    return max(0, -d), min(n, n - d)
+
+
+@njit(parallel=True, cache=True)
+def gmrf_matvec(x, w, offsets, dw, out, rows):
+    """``out = Q x`` with ``Q = diag(dw) + sum_o D_o^T diag(w_o) D_o``, for a batch of images.
+
+    ``x`` and ``out`` have shape ``(R, Z, H, W)`` (``R`` right-hand sides sharing
+    the operator); ``rows[r, k]`` receives the partial sum of ``x * out`` of row
+    ``k`` of image ``r`` (for the conjugate-gradient step length).
+    """
+    R, Z, H, W = x.shape
+    n = offsets.shape[0]
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        for r in range(R):
+            xr = x[r]
+            orow = out[r, z, i]
+            xrow = xr[z, i]
+            drow = dw[z, i]
+            for j in range(W):
+                orow[j] = drow[j] * xrow[j]
+            for o in range(n):
+                dz = offsets[o, 0]
+                di = offsets[o, 1]
+                dj = offsets[o, 2]
+                zf = z + dz
+                i_f = i + di
+                if 0 <= zf < Z and 0 <= i_f < H:  # forward clique (p, p + o)
+                    wrow = w[o, z, i]
+                    nrow = xr[zf, i_f]
+                    lo, hi = _span(dj, W)
+                    for j in range(lo, hi):
+                        orow[j] += wrow[j] * (xrow[j] - nrow[j + dj])
+                zb = z - dz
+                ib = i - di
+                if 0 <= zb < Z and 0 <= ib < H:  # backward clique (p - o, p)
+                    wrow = w[o, zb, ib]
+                    nrow = xr[zb, ib]
+                    lo, hi = _span(-dj, W)
+                    for j in range(lo, hi):
+                        orow[j] += wrow[j - dj] * (xrow[j] - nrow[j - dj])
+            acc = 0.0
+            for j in range(W):
+                acc += xrow[j] * orow[j]
+            rows[r, k] = acc
+
+
+@njit(parallel=True, cache=True)
+def gmrf_diagonal(w, offsets, dw, out):
+    """Diagonal of ``Q`` (data precision plus the weights of every clique touching a pixel)."""
+    Z, H, W = dw.shape
+    n = offsets.shape[0]
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        orow = out[z, i]
+        drow = dw[z, i]
+        for j in range(W):
+            orow[j] = drow[j]
+        for o in range(n):
+            dz = offsets[o, 0]
+            di = offsets[o, 1]
+            dj = offsets[o, 2]
+            if 0 <= z + dz < Z and 0 <= i + di < H:
+                wrow = w[o, z, i]
+                lo, hi = _span(dj, W)
+                for j in range(lo, hi):
+                    orow[j] += wrow[j]
+            zb = z - dz
+            ib = i - di
+            if 0 <= zb < Z and 0 <= ib < H:
+                wrow = w[o, zb, ib]
+                lo, hi = _span(-dj, W)
+                for j in range(lo, hi):
+                    orow[j] += wrow[j - dj]
+
+
+@njit(parallel=True, cache=True)
+def pcg_step(x, r, p, q, alpha, minv, zr, rows_rz, rows_rr):
+    """``x += alpha p``, ``r -= alpha q``, ``zr = minv r``; per-row sums of ``r zr`` and ``r r``.
+
+    ``alpha`` has one entry per right-hand side (0 freezes a converged one).
+    """
+    R, Z, H, W = x.shape
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        mrow = minv[z, i]
+        for s in range(R):
+            a = alpha[s]
+            xrow = x[s, z, i]
+            rrow = r[s, z, i]
+            prow = p[s, z, i]
+            qrow = q[s, z, i]
+            zrow = zr[s, z, i]
+            acc = 0.0
+            acc2 = 0.0
+            for j in range(W):
+                xrow[j] += a * prow[j]
+                rj = rrow[j] - a * qrow[j]
+                rrow[j] = rj
+                zj = mrow[j] * rj
+                zrow[j] = zj
+                acc += rj * zj
+                acc2 += rj * rj
+            rows_rz[s, k] = acc
+            rows_rr[s, k] = acc2
+
+
+@njit(parallel=True, cache=True)
+def pcg_direction(p, zr, beta):
+    """``p = zr + beta p`` for every right-hand side."""
+    R, Z, H, W = p.shape
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        for s in range(R):
+            b = beta[s]
+            prow = p[s, z, i]
+            zrow = zr[s, z, i]
+            for j in range(W):
+                prow[j] = zrow[j] + b * prow[j]
+
+
+@njit(inline="always", cache=True)
+def _gsm_logits(logamp, prec, o, d2, lam, inv_t, lp):
+    """Tempered log-probabilities of the scales of one clique; returns their maximum."""
+    K = logamp.shape[1]
+    m = -np.inf
+    for c in range(K):
+        v = (logamp[o, c] - 0.5 * lam * prec[o, c] * d2) * inv_t
+        lp[c] = v
+        if v > m:
+            m = v
+    return m
+
+
+@njit(parallel=True, cache=True)
+def gsm_draw_weights(x, offsets, logamp, prec, strength, temperature, key, w):
+    """Draw every clique's scale given the image and store its precision in ``w``.
+
+    Clique ``(o, p)`` with difference ``d`` takes component ``c`` with probability
+    proportional to ``(exp(logamp[o, c]) exp(-strength[o] prec[o, c] d^2 / 2))^(1/T)``
+    and gets weight ``strength[o] * prec[o, c]`` (the tempered image update then
+    scales the whole precision by ``1/T`` itself).  At ``T = 0`` the most
+    probable component is taken (the half-quadratic choice).  Weights of
+    cliques that leave the lattice are set to 0.
+    """
+    Z, H, W = x.shape
+    n = offsets.shape[0]
+    K = logamp.shape[1]
+    N = Z * H * W
+    inv_t = 1.0 / temperature if temperature > 0.0 else 0.0
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        lp = np.empty(K)
+        xrow = x[z, i]
+        for o in range(n):
+            wrow = w[o, z, i]
+            zf = z + offsets[o, 0]
+            i_f = i + offsets[o, 1]
+            dj = offsets[o, 2]
+            lam = strength[o]
+            if not (0 <= zf < Z and 0 <= i_f < H):
+                for j in range(W):
+                    wrow[j] = 0.0
+                continue
+            nrow = x[zf, i_f]
+            lo, hi = _span(dj, W)
+            for j in range(0, lo):
+                wrow[j] = 0.0
+            for j in range(hi, W):
+                wrow[j] = 0.0
+            base = o * N + (z * H + i) * W
+            for j in range(lo, hi):
+                d = nrow[j + dj] - xrow[j]
+                d2 = d * d
+                if temperature > 0.0:
+                    m = _gsm_logits(logamp, prec, o, d2, lam, inv_t, lp)
+                    tot = 0.0
+                    for c in range(K):
+                        e = np.exp(lp[c] - m)
+                        lp[c] = e
+                        tot += e
+                    u = uniform(key, base + j) * tot
+                    c = 0
+                    acc = lp[0]
+                    while acc <= u and c < K - 1:
+                        c += 1
+                        acc += lp[c]
+                else:
+                    m = _gsm_logits(logamp, prec, o, d2, lam, 1.0, lp)
+                    c = 0
+                    for cc in range(K):
+                        if lp[cc] == m:
+                            c = cc
+                            break
+                wrow[j] = lam * prec[o, c]
+
+
+@njit(parallel=True, cache=True)
+def gsm_mean_weights(x, offsets, logamp, prec, strength, w):
+    """Posterior-mean precision of every clique given the image (half-quadratic weights).
+
+    ``w[o, p] = strength[o] * E[prec | d]``, the weight of one iteratively
+    reweighted least-squares step; for a Gaussian scale mixture this step never
+    raises the energy (Geman & Reynolds 1992; Nikolova & Ng 2005).
+    """
+    Z, H, W = x.shape
+    n = offsets.shape[0]
+    K = logamp.shape[1]
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        lp = np.empty(K)
+        xrow = x[z, i]
+        for o in range(n):
+            wrow = w[o, z, i]
+            zf = z + offsets[o, 0]
+            i_f = i + offsets[o, 1]
+            dj = offsets[o, 2]
+            lam = strength[o]
+            if not (0 <= zf < Z and 0 <= i_f < H):
+                for j in range(W):
+                    wrow[j] = 0.0
+                continue
+            nrow = x[zf, i_f]
+            lo, hi = _span(dj, W)
+            for j in range(0, lo):
+                wrow[j] = 0.0
+            for j in range(hi, W):
+                wrow[j] = 0.0
+            for j in range(lo, hi):
+                d = nrow[j + dj] - xrow[j]
+                m = _gsm_logits(logamp, prec, o, d * d, lam, 1.0, lp)
+                tot = 0.0
+                num = 0.0
+                for c in range(K):
+                    e = np.exp(lp[c] - m)
+                    tot += e
+                    num += e * prec[o, c]
+                wrow[j] = lam * num / tot
+
+
+@njit(parallel=True, cache=True)
+def gsm_prior_energy(x, offsets, logamp, prec, strength):
+    """``-sum_cliques log sum_c exp(logamp[o, c] - strength[o] prec[o, c] d^2 / 2)``."""
+    Z, H, W = x.shape
+    n = offsets.shape[0]
+    K = logamp.shape[1]
+    rows = np.zeros(Z * H)
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        lp = np.empty(K)
+        xrow = x[z, i]
+        acc = 0.0
+        for o in range(n):
+            zf = z + offsets[o, 0]
+            i_f = i + offsets[o, 1]
+            dj = offsets[o, 2]
+            if not (0 <= zf < Z and 0 <= i_f < H):
+                continue
+            nrow = x[zf, i_f]
+            lo, hi = _span(dj, W)
+            for j in range(lo, hi):
+                d = nrow[j + dj] - xrow[j]
+                m = _gsm_logits(logamp, prec, o, d * d, strength[o], 1.0, lp)
+                tot = 0.0
+                for c in range(K):
+                    tot += np.exp(lp[c] - m)
+                acc -= m + np.log(tot)
+        rows[k] = acc
+    e = 0.0
+    for k in range(Z * H):
+        e += rows[k]
+    return e
+
+
+@njit(parallel=True, cache=True)
+def gmrf_perturbation(w, offsets, dw, key, scale, out):
+    """``out = scale * (diag(dw)^(1/2) e1 + sum_o D_o^T diag(w_o)^(1/2) e2_o)``, e1, e2 standard normal.
+
+    Its covariance is ``scale^2 Q``: solving ``Q e = out`` gives a draw of
+    ``N(0, scale^2 Q^-1)`` (perturbation-optimisation, Papandreou & Yuille 2010).
+    Each clique's normal is regenerated from its counter at both of its ends, so
+    no two rows write the same value.
+    """
+    Z, H, W = dw.shape
+    n = offsets.shape[0]
+    N = Z * H * W
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        orow = out[z, i]
+        drow = dw[z, i]
+        base = (z * H + i) * W
+        for j in range(W):
+            orow[j] = np.sqrt(drow[j]) * normal(key, n * N + base + j)
+        for o in range(n):
+            dz = offsets[o, 0]
+            di = offsets[o, 1]
+            dj = offsets[o, 2]
+            if 0 <= z + dz < Z and 0 <= i + di < H:  # p is the tail of clique (p, p + o)
+                wrow = w[o, z, i]
+                lo, hi = _span(dj, W)
+                cb = o * N + base
+                for j in range(lo, hi):
+                    orow[j] -= np.sqrt(wrow[j]) * normal(key, cb + j)
+            zb = z - dz
+            ib = i - di
+            if 0 <= zb < Z and 0 <= ib < H:  # p is the head of clique (p - o, p)
+                wrow = w[o, zb, ib]
+                lo, hi = _span(-dj, W)
+                cb = o * N + (zb * H + ib) * W - dj
+                for j in range(lo, hi):
+                    orow[j] += np.sqrt(wrow[j - dj]) * normal(key, cb + j)
+        for j in range(W):
+            orow[j] *= scale
