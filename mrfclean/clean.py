@@ -46,6 +46,8 @@ class Settings:
         Two-level Gaussian data term of the binary model.
     sigma : float or "auto"
         Grey: Gaussian noise standard deviation in image units.
+    gain, read_variance : float or "auto"
+        Grey, Poisson-Gaussian noise: ``Var(y | x) = gain * x + read_variance``.
     strength : float or "auto"
         Grey: multiplier of the learned prior's precision.
     schedule, t_start, t_end
@@ -76,6 +78,8 @@ class Settings:
     flip_rate: object = "auto"
     levels: object = "auto"
     sigma: object = "auto"
+    gain: object = "auto"
+    read_variance: object = "auto"
     strength: object = "auto"
     schedule: str = "geometric"
     t_start: float = 3.0
@@ -172,7 +176,12 @@ def clean(image, *, settings: Settings | None = None, rng=None, progress=False,
             uncertainty=s.uncertainty, certify=s.certify, rng=rng, progress=progress)
     from .grey import clean_grey
 
-    return clean_grey(image, settings=s, rng=rng, progress=progress)
+    method = "mean" if s.method in ("auto", "mpm") else s.method
+    return clean_grey(
+        image, method=method, noise=s.noise if s.noise in ("auto", "gaussian", "poisson-gaussian") else "auto",
+        sigma=s.sigma, gain=s.gain, read_variance=s.read_variance, strength=s.strength,
+        schedule=make_schedule(s.schedule, start=s.t_start, end=s.t_end), sweeps=s.sweeps,
+        burn_in=s.burn_in, samples=s.samples, chains=s.chains, rng=rng, progress=progress)
 
 
 @dataclass

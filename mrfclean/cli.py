@@ -126,6 +126,10 @@ def add_model_options(p):
                    help="two-level Gaussian data term for grey scans of bi-level specimens")
     m.add_argument("--sigma", type=_auto_or_float,
                    help="grey: noise standard deviation in image units (default: estimated)")
+    m.add_argument("--gain", type=_auto_or_float, metavar="A",
+                   help="grey, Poisson-Gaussian noise: variance = A * signal + B (default: estimated)")
+    m.add_argument("--read-variance", type=_auto_or_float, metavar="B",
+                   help="grey, Poisson-Gaussian noise: the signal-independent variance B")
     m.add_argument("--strength", type=_auto_or_float,
                    help="grey: prior strength multiplier (default: chosen by SURE)")
     m.add_argument("--boundary", choices=("free", "periodic"), help="lattice boundary (default free)")
