@@ -464,8 +464,16 @@ def run_batch(inputs, outdir, *, settings: Settings | None = None,
     Returns
     -------
     BatchSummary
-        Raises ``KeyboardInterrupt`` never: an interrupted run returns with
-        ``interrupted=True`` after recording what finished.
+        A run interrupted (Ctrl-C, SIGTERM in the command line) while images
+        are being cleaned returns with ``interrupted=True`` after recording
+        what finished; before that (while inputs are hashed) the
+        ``KeyboardInterrupt`` propagates, with nothing yet written but the
+        manifest's ``run`` line.
+
+    Raises
+    ------
+    FolderBusy
+        Another batch holds the output folder.
     """
     t0 = time.perf_counter()
     started_at = time.time()
