@@ -802,3 +802,204 @@ def gmrf_perturbation(w, offsets, dw, key, scale, out):
                     orow[j] += np.sqrt(wrow[j - dj]) * normal(key, cb + j)
         for j in range(W):
             orow[j] *= scale
+
+
+@njit(inline="always", cache=True)
+def _q_row(src, w, offsets, dw, z, i, out):
+    """Row ``(z, i)`` of ``Q src`` into ``out`` (see :func:`gmrf_matvec`)."""
+    Z, H, W = src.shape
+    n = offsets.shape[0]
+    xrow = src[z, i]
+    drow = dw[z, i]
+    for j in range(W):
+        out[j] = drow[j] * xrow[j]
+    for o in range(n):
+        dz = offsets[o, 0]
+        di = offsets[o, 1]
+        dj = offsets[o, 2]
+        zf = z + dz
+        i_f = i + di
+        if 0 <= zf < Z and 0 <= i_f < H:
+            wrow = w[o, z, i]
+            nrow = src[zf, i_f]
+            lo, hi = _span(dj, W)
+            for j in range(lo, hi):
+                out[j] += wrow[j] * (xrow[j] - nrow[j + dj])
+        zb = z - dz
+        ib = i - di
+        if 0 <= zb < Z and 0 <= ib < H:
+            wrow = w[o, zb, ib]
+            nrow = src[zb, ib]
+            lo, hi = _span(-dj, W)
+            for j in range(lo, hi):
+                out[j] += wrow[j - dj] * (xrow[j] - nrow[j - dj])
+
+
+@njit(parallel=True, cache=True)
+def _cg_start(X, B, w, offsets, dw, minv, Rr, P, Q, Zr, rows):
+    """``r = b - Q x``, ``z = M^-1 r``, ``p = z``, ``q = Q p``; row sums of r z, r r, b b, p q."""
+    S, Z, H, W = X.shape
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        tmp = np.empty(W)
+        mrow = minv[z, i]
+        for s in range(S):
+            _q_row(X[s], w, offsets, dw, z, i, tmp)
+            rrow = Rr[s, z, i]
+            zrow = Zr[s, z, i]
+            brow = B[s, z, i]
+            prow = P[s, z, i]
+            a0 = 0.0
+            a1 = 0.0
+            a2 = 0.0
+            for j in range(W):
+                rj = brow[j] - tmp[j]
+                rrow[j] = rj
+                zj = mrow[j] * rj
+                zrow[j] = zj
+                prow[j] = zj
+                a0 += rj * zj
+                a1 += rj * rj
+                a2 += brow[j] * brow[j]
+            rows[0, s, k] = a0
+            rows[1, s, k] = a1
+            rows[2, s, k] = a2
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        for s in range(S):
+            qrow = Q[s, z, i]
+            _q_row(P[s], w, offsets, dw, z, i, qrow)
+            prow = P[s, z, i]
+            acc = 0.0
+            for j in range(W):
+                acc += prow[j] * qrow[j]
+            rows[3, s, k] = acc
+
+
+@njit(parallel=True, cache=True)
+def _cg_update(X, Rr, P, Q, Zr, minv, alpha, rows):
+    """``x += a p``, ``r -= a q``, ``z = M^-1 r``; row sums of r z and r r."""
+    S, Z, H, W = X.shape
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        mrow = minv[z, i]
+        for s in range(S):
+            a = alpha[s]
+            if a == 0.0:
+                continue
+            xrow = X[s, z, i]
+            rrow = Rr[s, z, i]
+            prow = P[s, z, i]
+            qrow = Q[s, z, i]
+            zrow = Zr[s, z, i]
+            a0 = 0.0
+            a1 = 0.0
+            for j in range(W):
+                xrow[j] += a * prow[j]
+                rj = rrow[j] - a * qrow[j]
+                rrow[j] = rj
+                zj = mrow[j] * rj
+                zrow[j] = zj
+                a0 += rj * zj
+                a1 += rj * rj
+            rows[0, s, k] = a0
+            rows[1, s, k] = a1
+
+
+@njit(parallel=True, cache=True)
+def _cg_direction(w, offsets, dw, P, Q, Zr, beta, active, rows):
+    """``p = z + b p`` and ``q = Q z + b q`` (so ``q = Q p`` with one product); row sums of p q."""
+    S, Z, H, W = P.shape
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        tmp = np.empty(W)
+        for s in range(S):
+            if not active[s]:
+                continue
+            b = beta[s]
+            _q_row(Zr[s], w, offsets, dw, z, i, tmp)
+            prow = P[s, z, i]
+            qrow = Q[s, z, i]
+            zrow = Zr[s, z, i]
+            acc = 0.0
+            for j in range(W):
+                pj = zrow[j] + b * prow[j]
+                qj = tmp[j] + b * qrow[j]
+                prow[j] = pj
+                qrow[j] = qj
+                acc += pj * qj
+            rows[3, s, k] = acc
+
+
+@njit(cache=True)
+def gmrf_cg(X, B, w, offsets, dw, minv, tols, max_iter, Rr, P, Q, Zr):
+    """Jacobi-preconditioned conjugate gradients for ``Q X[s] = B[s]``, all ``s`` at once.
+
+    ``X`` holds the starting points and receives the solutions; system ``s``
+    stops when ``||r|| <= tols[s] ||b||``.  Returns ``(iterations, worst
+    relative residual)``.  Reductions are row partial sums added in order.
+    """
+    S, Z, H, W = X.shape
+    nr = Z * H
+    rows = np.zeros((4, S, nr))
+    _cg_start(X, B, w, offsets, dw, minv, Rr, P, Q, Zr, rows)
+    rz = np.zeros(S)
+    rr = np.zeros(S)
+    bb = np.zeros(S)
+    pq = np.zeros(S)
+    for s in range(S):
+        for k in range(nr):
+            rz[s] += rows[0, s, k]
+            rr[s] += rows[1, s, k]
+            bb[s] += rows[2, s, k]
+            pq[s] += rows[3, s, k]
+    target = np.empty(S)
+    active = np.zeros(S, np.bool_)
+    for s in range(S):
+        target[s] = tols[s] * tols[s] * bb[s]
+        active[s] = rr[s] > target[s]
+    alpha = np.zeros(S)
+    beta = np.zeros(S)
+    it = 0
+    while it < max_iter:
+        any_active = False
+        for s in range(S):
+            any_active = any_active or active[s]
+        if not any_active:
+            break
+        for s in range(S):
+            alpha[s] = rz[s] / pq[s] if (active[s] and pq[s] > 0.0) else 0.0
+            if active[s] and not pq[s] > 0.0:
+                active[s] = False
+        _cg_update(X, Rr, P, Q, Zr, minv, alpha, rows)
+        for s in range(S):
+            if alpha[s] == 0.0:
+                continue
+            a0 = 0.0
+            a1 = 0.0
+            for k in range(nr):
+                a0 += rows[0, s, k]
+                a1 += rows[1, s, k]
+            beta[s] = a0 / rz[s] if rz[s] > 0.0 else 0.0
+            rz[s] = a0
+            rr[s] = a1
+            active[s] = a1 > target[s]
+        it += 1
+        if it >= max_iter:
+            break
+        _cg_direction(w, offsets, dw, P, Q, Zr, beta, active, rows)
+        for s in range(S):
+            if active[s]:
+                a = 0.0
+                for k in range(nr):
+                    a += rows[3, s, k]
+                pq[s] = a
+    worst = 0.0
+    for s in range(S):
+        if bb[s] > 0.0:
+            worst = max(worst, np.sqrt(rr[s] / bb[s]))
+    return it, worst

@@ -118,6 +118,7 @@ class NoiseCurve:
     levels: np.ndarray
     variances: np.ndarray
     counts: np.ndarray
+    a_se: float = float("nan")  # standard error of the fitted slope (from the fit's residuals)
 
 
 def estimate_poisson_gaussian(image, *, bins: int = 40, smooth_quantile: float = 0.5) -> NoiseCurve:
@@ -160,7 +161,7 @@ def estimate_poisson_gaussian(image, *, bins: int = 40, smooth_quantile: float =
     keep = g <= np.quantile(g, smooth_quantile)
     m, w = m[keep], w[keep]
     order = np.argsort(m, kind="stable")
-    groups = np.array_split(order, bins)
+    groups = np.array_split(order, max(2, min(bins, m.size // 32)))
     lv, var, cnt = [], [], []
     for idx in groups:
         if idx.size < 16:
@@ -172,16 +173,21 @@ def estimate_poisson_gaussian(image, *, bins: int = 40, smooth_quantile: float =
     lv, var, cnt = np.array(lv), np.array(var), np.array(cnt, dtype=np.float64)
     if lv.size < 2:
         raise ValueError("not enough smooth image area to estimate a noise curve")
-    wts = cnt / np.maximum(var, 1e-300) ** 2
+    floor = max(float(np.max(var)) * 1e-6, 1e-150)
+    wts = cnt / np.maximum(var, floor) ** 2
     A = np.stack([lv, np.ones_like(lv)], axis=1)
     sol, *_ = np.linalg.lstsq(A * np.sqrt(wts)[:, None], var * np.sqrt(wts), rcond=None)
     a, b = float(sol[0]), float(sol[1])
+    res = (var - A @ sol) * np.sqrt(wts)
+    dof = max(lv.size - 2, 1)
+    cov = np.linalg.pinv((A * wts[:, None]).T @ A) * float(res @ res) / dof
+    a_se = float(np.sqrt(max(cov[0, 0], 0.0)))
     if a < 0:  # no signal dependence visible: constant variance
         a, b = 0.0, float(np.sum(wts * var) / np.sum(wts))
     if b < 0:  # pure Poisson-like: refit through the origin
         b = 0.0
         a = float(np.sum(wts * lv * var) / np.sum(wts * lv * lv))
-    return NoiseCurve(a, b, lv, var, cnt)
+    return NoiseCurve(a, b, lv, var, cnt, a_se)
 
 
 # ---------------------------------------------------------------------------------------
@@ -413,8 +419,9 @@ def choose_strength(observed, variance, prior: GSMPrior, *, grid=None, crop=64, 
         tot, n = 0.0, 0
         for k, (si, sj) in enumerate(wins):
             yc, vc = y[zs, si, sj], v[zs, si, sj]
+            start = ndimage.gaussian_filter(yc, (0.0, 1.0, 1.0))
             m = GreyModel(yc, variance=vc, prior=prior.with_strength(float(lam)), tol=tol,
-                          sample_tol=max(tol, 1e-2))
+                          sample_tol=max(tol, 1e-2), starts=[start])
             run = sampler.run(m, sweeps=burn_in + samples, burn_in=burn_in, chains=1,
                               seed=seed + k, tally=True)
             tot += sure(yc, run.tally.mean64(), run.tally.var64(), vc) * yc.size

@@ -413,36 +413,13 @@ class GreyModel(ChainModel):
         R = rhs.shape[0]
         X, Rr, P, Qp, Zr = (self._buf[k][:R] for k in ("x", "r", "p", "q", "z"))
         X[...] = x0
-        rows = np.empty((R, self.grid.shape[0] * self.grid.shape[1]))
-        rows2 = np.empty_like(rows)
-        kernels.gmrf_matvec(X, self.w, self.offsets, self.dw, Qp, rows)
-        np.subtract(rhs, Qp, out=Rr)
-        np.multiply(Rr, self._minv, out=Zr)
-        P[...] = Zr
-        rz = _dots(Rr, Zr)
-        rr = _dots(Rr, Rr)
-        bnorm = np.sqrt(_dots(rhs, rhs))
         tols = np.full(R, self.tol) if tols is None else np.asarray(tols, dtype=np.float64)
-        target = (tols * bnorm) ** 2
-        active = rr > target
-        zero = np.zeros(R)
-        it = 0
-        while active.any() and it < self.max_iter:
-            kernels.gmrf_matvec(P, self.w, self.offsets, self.dw, Qp, rows)
-            pq = rows.sum(axis=1)
-            alpha = np.where(active & (pq > 0), rz / np.where(pq > 0, pq, 1.0), 0.0)
-            kernels.pcg_step(X, Rr, P, Qp, alpha, self._minv, Zr, rows, rows2)
-            rz_new = rows.sum(axis=1)
-            rr = np.where(active, rows2.sum(axis=1), rr)
-            beta = np.where(active, rz_new / np.where(rz > 0, rz, 1.0), zero)
-            rz = np.where(active, rz_new, rz)
-            kernels.pcg_direction(P, Zr, beta)
-            active = active & (rr > target)
-            it += 1
+        B = np.ascontiguousarray(rhs, dtype=np.float64)
+        it, worst = kernels.gmrf_cg(X, B, self.w, self.offsets, self.dw, self._minv, tols,
+                                    self.max_iter, Rr, P, Qp, Zr)
         self.stats.solves += 1
-        self.stats.iterations += it
-        rel = float(np.max(np.sqrt(rr) / np.where(bnorm > 0, bnorm, 1.0)))
-        self.stats.worst_residual = max(self.stats.worst_residual, rel)
+        self.stats.iterations += int(it)
+        self.stats.worst_residual = max(self.stats.worst_residual, float(worst))
         return X, it
 
     # --- ChainModel -------------------------------------------------------------------

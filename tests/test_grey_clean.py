@@ -1,0 +1,196 @@
+"""clean_grey end to end: dtype rules, input safety, reproducibility, calibration, quality floor."""
+
+import numpy as np
+import pytest
+import skimage.data
+from skimage.util import img_as_float
+
+from mrfclean import sampler
+from mrfclean.fit.grey import score_matching_loss, sure
+from mrfclean.grey import clean_grey, credible_interval
+from mrfclean.metrics import psnr
+from mrfclean.models.grey import GreyModel, GSMPrior
+
+FAST = dict(strength=1.0, burn_in=2, samples=4, chains=1)  # one chain: no R-hat on 4 draws
+
+
+def scene(shape=(48, 56)):
+    i, j = np.mgrid[0:shape[0], 0:shape[1]]
+    x = 0.2 + 0.5 * ((i - 20) ** 2 + (j - 30) ** 2 < 150) + 0.2 * (j > 40)
+    return x
+
+
+@pytest.mark.parametrize("dtype, peak", [(np.uint8, 255), (np.uint16, 4000), (np.float32, 1.0)])
+def test_dtype_round_trip_and_physical_units(dtype, peak):
+    x = scene() * peak
+    y = x + 0.08 * peak * np.random.default_rng(1).standard_normal(x.shape)
+    if np.dtype(dtype).kind == "u":
+        y = np.clip(np.rint(y), 0, np.iinfo(dtype).max)
+    y = y.astype(dtype)
+    res = clean_grey(y, rng=3, **FAST)
+    assert res.estimate.dtype == np.dtype(dtype) and res.estimate.shape == y.shape
+    assert res.mean.dtype == np.float32 and res.std.dtype == np.float32
+    # physical units: the estimate is an intensity of the input's own scale
+    err_in = np.abs(y.astype(np.float64) - x).mean()
+    assert np.abs(res.estimate.astype(np.float64) - x).mean() < 0.6 * err_in
+    assert res.kind == "grey" and res.method == "mean"
+    assert res.params["noise"] == "gaussian" and "sigma" in res.params["estimated"]
+
+
+def test_input_not_modified_and_same_seed_identical():
+    y = (scene() + 0.1 * np.random.default_rng(2).standard_normal(scene().shape)).astype(np.float32)
+    keep = y.copy()
+    a = clean_grey(y, rng=7, **FAST)
+    b = clean_grey(y, rng=np.random.default_rng(7), **FAST)
+    assert np.array_equal(y, keep)
+    assert np.array_equal(a.mean, b.mean) and np.array_equal(a.std, b.std)
+    c = clean_grey(y, rng=8, **FAST)
+    assert not np.array_equal(a.std, c.std)
+
+
+def test_uint8_output_clipped():
+    y = np.full((32, 32), 250, np.uint8)
+    y[::2, ::3] = 255
+    y[5:9, 5:9] = 0
+    res = clean_grey(y, rng=1, **FAST)
+    assert res.estimate.dtype == np.uint8
+    assert res.estimate.min() >= 0 and res.estimate.max() <= 255
+
+
+def test_bad_input_raises_clear_errors():
+    with pytest.raises(ValueError, match="method"):
+        clean_grey(np.zeros((16, 16)), method="mode")
+    with pytest.raises(ValueError, match="NaN"):
+        clean_grey(np.full((16, 16), np.nan))
+    with pytest.raises(ValueError, match="sigma"):
+        clean_grey(np.zeros((16, 16)), sigma=-1.0)
+    with pytest.raises(ValueError, match="2-D"):
+        clean_grey(np.zeros(16))
+
+
+def test_map_energy_not_above_posterior_mean_energy():
+    """Annealing then half-quadratic descent: the MAP's energy is no higher than the
+    posterior mean's (property of a mode: it minimises the energy)."""
+    x = scene()
+    y = (x + 0.1 * np.random.default_rng(4).standard_normal(x.shape)).astype(np.float32)
+    mp = clean_grey(y, method="map", rng=5, sweeps=10, **FAST)
+    mn = clean_grey(y, method="mean", rng=5, **FAST)
+    assert mp.diagnostics.final_energy <= mn.diagnostics.final_energy
+    assert mp.diagnostics.quench_passes >= 1
+
+
+def test_quench_never_raises_energy():
+    gen = np.random.default_rng(8)
+    y = scene() + 0.1 * gen.standard_normal(scene().shape)
+    m = GreyModel(y, variance=0.01, prior=GSMPrior.load(), tol=1e-8)
+    st = m.start(0, 1)
+    e0 = m.energy(st)
+    m.quench(st)
+    assert m.energy(st) <= e0
+
+
+def test_score_matching_gradient_matches_finite_differences():
+    """Analytic gradient of the score-matching loss (Hyvärinen 2005, eq. 4) against
+    central differences (step 1e-6; agreement to 1e-6 relative, limited by round-off)."""
+    gen = np.random.default_rng(0)
+    x = [img_as_float(skimage.data.brick())[:40, :50] + 0.003 * gen.standard_normal((40, 50))]
+    prec = 10 ** np.linspace(0.5, 4.5, 6)
+    groups = [[(0, 1), (1, 0)], [(1, 1), (1, -1)]]
+    th = gen.normal(size=12)
+    f, g = score_matching_loss(th, x, groups, prec)
+    num = np.array([(score_matching_loss(th + e, x, groups, prec)[0]
+                     - score_matching_loss(th - e, x, groups, prec)[0]) / 2e-6
+                    for e in np.eye(12) * 1e-6])
+    assert np.max(np.abs(num - g)) < 1e-6 * np.max(np.abs(g))
+
+
+def test_sure_unbiased_for_linear_gaussian_posterior_mean():
+    """Quadratic prior: the posterior mean is linear in y, and SURE (Stein 1981) is an
+    unbiased estimate of its mean-squared error.  Average over 40 noise draws of
+    (SURE - true MSE); each difference has sd ~ 2 sigma^2 sqrt(2/n) ~ 1.5e-3 here
+    (n = 1024), so the average has sd ~ 2.4e-4: tolerance 1e-3."""
+    gen = np.random.default_rng(12)
+    x = scene((32, 32))
+    s = 0.1
+    diffs = []
+    for k in range(40):
+        y = x + s * gen.standard_normal(x.shape)
+        m = GreyModel(y, variance=s * s, prior=GSMPrior.quadratic(20.0), tol=1e-8)
+        run = sampler.run(m, sweeps=41, burn_in=1, seed=k, tally=True)
+        mean, var = run.tally.mean64()[0], run.tally.var64()[0]
+        diffs.append(sure(y, mean, var, s * s) - np.mean((mean - x) ** 2))
+    assert abs(np.mean(diffs)) < 1e-3
+
+
+def gmrf_draws(n, shape, lam, seed):
+    """Exact draws of the intrinsic GMRF with precision ``lam * L`` (4-neighbour Laplacian):
+    eigen-decomposition of the dense Laplacian (numpy), a standard-normal coefficient on
+    every non-constant mode and an arbitrary level (0.5) for the constant one."""
+    H, W = shape
+    N = H * W
+    L = np.zeros((N, N))
+    idx = np.arange(N).reshape(shape)
+    for a, b in ((idx[:, 1:], idx[:, :-1]), (idx[1:], idx[:-1])):
+        a, b = a.ravel(), b.ravel()
+        L[a, a] += 1
+        L[b, b] += 1
+        L[a, b] -= 1
+        L[b, a] -= 1
+    ev, V = np.linalg.eigh(lam * L)
+    keep = ev > 1e-9 * ev.max()
+    gen = np.random.default_rng(seed)
+    xi = gen.standard_normal((n, keep.sum()))
+    return 0.5 + (xi / np.sqrt(ev[keep])) @ V[:, keep].T, gen
+
+
+@pytest.mark.slow
+def test_credible_intervals_calibrated_on_images_from_the_model():
+    """Images drawn exactly from the model's own prior (quadratic, 4-neighbour), noised
+    with the model's sigma: 95% intervals must cover 95 +- 1.5% of true pixels.
+
+    12 images x 1024 pixels; the posterior correlation length here is ~2 pixels, so
+    about 12 * 1024 / 8 = 1500 effectively independent pixel events: binomial sd
+    sqrt(0.95 * 0.05 / 1500) = 0.0056, and the std estimated from 80 draws biases
+    coverage by under 0.3% -- the 1.5% band is ~2.7 sd (the issue's requirement)."""
+    lam, s, shape = 4.0, 0.15, (32, 32)
+    xs, gen = gmrf_draws(12, shape, lam, seed=31)
+    hits = []
+    for k, xt in enumerate(xs):
+        xt = xt.reshape(shape)
+        y = xt + s * gen.standard_normal(shape)
+        m = GreyModel(y, variance=s * s, prior=GSMPrior.quadratic(lam), tol=1e-8)
+        run = sampler.run(m, sweeps=42, burn_in=2, chains=2, seed=100 + k, tally=True)
+        mu, sd = run.tally.mean64()[0], np.sqrt(run.tally.var64()[0])
+        hits.append(np.abs(xt - mu) <= 1.959964 * sd)
+    cover = np.mean(hits)
+    assert abs(cover - 0.95) < 0.015, cover
+
+
+@pytest.fixture(scope="module")
+def cell_camera():
+    gen = np.random.default_rng(2025)
+    out = {}
+    for name in ("cell", "camera"):
+        x = img_as_float(getattr(skimage.data, name)())[100:228, 100:228]
+        out[name] = (x, (x + 0.1 * gen.standard_normal(x.shape)).astype(np.float32))
+    return out
+
+
+@pytest.mark.slow
+# The default run keeps 6 draws per chain; split R-hat on halves of 3 draws is
+# itself noisy and often flags these short runs, which is reported, not fatal.
+@pytest.mark.filterwarnings("ignore::mrfclean.diagnostics.ChainsDisagree")
+@pytest.mark.parametrize("name, floor, cover", [("cell", 38.0, 0.70), ("camera", 28.9, 0.85)])
+def test_psnr_floor_on_skimage_crops(cell_camera, name, floor, cover):
+    """Everything auto on 128^2 crops of skimage.data cell and camera, sigma 0.1.
+
+    Floors set from measurement (this test's crops: cell 39.1 dB, camera 29.9 dB,
+    measured with the shipped prior), about 1 dB below, so a regression of the
+    prior, strength choice or sampler fails; the noisy input is at 20 dB.  The
+    coverage floor is the measured value less 8-9 points (camera 0.94; cell 0.78 -- the clean
+    cell image carries fine texture the prior smooths away, see README)."""
+    x, y = cell_camera[name]
+    res = clean_grey(y, rng=0)
+    assert psnr(x, res.estimate, data_range=1.0) > floor
+    lo, hi = credible_interval(res, 0.95)
+    assert cover < np.mean((x >= lo) & (x <= hi)) < 0.99
