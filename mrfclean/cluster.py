@@ -133,6 +133,12 @@ class DaskExecutor:
                 self.client.cancel(list(futures))
             raise
 
+    def warm(self) -> None:
+        """Load the compiled kernels on every worker now (e.g. before timing a run)."""
+        from .pool import _load_kernels
+
+        self.client.run(_load_kernels)
+
     def worker_pids(self) -> dict:
         """``{worker address: process id}`` of the cluster's workers."""
         return self.client.run(os.getpid)

@@ -100,9 +100,7 @@ def main(argv=None):
             print(f"{'(dask cluster start-up)':<28} {time.perf_counter() - t0:7.2f} s")
             try:
                 ex = DaskExecutor(client=client, threads=1)
-                # warm the workers' numba caches on a throw-away run, untimed
-                run_batch([inputs / "scan00.png"], tmp / "dask_warm", settings=settings,
-                          options=base, executor=ex)
+                ex.warm()  # load the compiled kernels on every worker, untimed
                 td = timed("dask LocalCluster, 2 workers", inputs, tmp / "dask", settings, base,
                            executor=ex)
             finally:
