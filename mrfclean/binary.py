@@ -25,6 +25,9 @@ DEFAULT_ANNEAL_SWEEPS = 300
 DEFAULT_BURN_IN = 100
 DEFAULT_SAMPLES = 400
 DEFAULT_CHAINS = 2
+#: The parameter fit and the sampling runs draw from streams of different seeds.
+FIT_SALT = 0x3C6EF372FE94F82A
+POSTERIOR_SALT = 0x5A5A5A5A
 
 
 def _auto_noise(image):
@@ -74,7 +77,7 @@ def clean_binary(image, *, method="mpm", noise="auto", coupling="auto", coupling
         With ``"map"``, also run temperature-1 chains for P(on) and its std.
     certify : bool
         Also compute the exact MAP energy by minimum cut (Greig, Porteous &
-        Seheult 1989) and report the gap (free boundary only).
+        Seheult 1989) and report the gap.
     rng : int or numpy.random.Generator, optional
     progress : bool
         Show a progress bar over sweeps.
@@ -127,19 +130,20 @@ def clean_binary(image, *, method="mpm", noise="auto", coupling="auto", coupling
         observed = lv.to_work(a).reshape(grid.shape)
 
     fit = fit_binary(observed, noise=noise, coupling=coupling, coupling_z=coupling_z,
-                     flip_rate=flip_rate, levels=levels, boundary=boundary, seed=seed)
+                     flip_rate=flip_rate, levels=levels, boundary=boundary, seed=seed ^ FIT_SALT)
     start = observed if noise == "flip" else None
     model = BinaryModel(fit.noise.field(observed), coupling=fit.coupling,
                         coupling_z=fit.coupling_z, grid=grid, start=start)
     diag = Diagnostics()
     params = {"method": method, "chains": chains, "boundary": boundary, "seed": seed,
               "levels_out": [float(low), float(high)], **fit.describe(),
-              "estimated": [k for k, v in (("coupling", coupling), ("flip_rate", flip_rate),
+              "estimated": [k for k, v in (("coupling", coupling), ("coupling_z", coupling_z),
+                                           ("flip_rate", flip_rate),
                                            ("levels", levels)) if v == "auto"]}
     mean = std = None
     if method == "map":
         schedule = schedule or Geometric(3.0, 0.05)
-        sweeps = int(sweeps or DEFAULT_ANNEAL_SWEEPS)
+        sweeps = int(DEFAULT_ANNEAL_SWEEPS if sweeps is None else sweeps)
         res = anneal(model, schedule=schedule, sweeps=sweeps, chains=chains, seed=seed,
                      progress=progress)
         spins = model.image(res.state)
@@ -149,9 +153,9 @@ def clean_binary(image, *, method="mpm", noise="auto", coupling="auto", coupling
         params.update(schedule.describe(), sweeps=sweeps)
     if method == "mpm" or uncertainty:
         burn_in = int(DEFAULT_BURN_IN if burn_in is None else burn_in)
-        samples = int(samples or DEFAULT_SAMPLES)
+        samples = int(DEFAULT_SAMPLES if samples is None else samples)
         post = sample_posterior(model, burn_in=burn_in, samples=samples, chains=chains,
-                                seed=seed ^ 0x5A5A5A5A, progress=progress)
+                                seed=seed ^ POSTERIOR_SALT, progress=progress)
         mean, std = post.tally.mean(), post.tally.std()
         record_posterior(diag, post)
         params.update(burn_in=burn_in, samples=samples)

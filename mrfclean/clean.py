@@ -24,6 +24,9 @@ from .tiles import MIN_TILE
 
 KINDS = ("auto", "binary", "grey")
 METHODS = ("auto", "map", "mpm", "mean")
+NOISES = ("auto", "flip", "gaussian", "poisson-gaussian")
+#: noise models each kind accepts ("gaussian" is the two-level data term for binary)
+KIND_NOISES = {"binary": ("auto", "flip", "gaussian"), "grey": ("auto", "gaussian", "poisson-gaussian")}
 
 
 @dataclass(frozen=True)
@@ -103,6 +106,8 @@ class Settings:
             raise ValueError(f"tile must be a whole number of at least {MIN_TILE} pixels, got {self.tile!r}")
         if self.method not in METHODS:
             raise ValueError(f"method must be one of {METHODS}, got {self.method!r}")
+        if self.noise not in NOISES:
+            raise ValueError(f"noise must be one of {NOISES}, got {self.noise!r}")
 
     def replace(self, **changes) -> "Settings":
         return dataclasses.replace(self, **changes)
@@ -146,6 +151,9 @@ def clean(image, *, settings: Settings | None = None, rng=None, progress=False,
     """
     s = settings or Settings()
     kind = choose_kind(image, s.kind)
+    if s.noise not in KIND_NOISES[kind]:
+        raise ValueError(f"noise {s.noise!r} does not fit the {kind} model; choose one of "
+                         f"{', '.join(KIND_NOISES[kind])}")
     stack = np.ndim(image) == 3 and np.shape(image)[0] > 1
     if stack and s.stack == "planes":
         from .stacks import clean_planes
@@ -169,7 +177,7 @@ def clean(image, *, settings: Settings | None = None, rng=None, progress=False,
             from .stacks import clean_volume_binary
             binary = partial(clean_volume_binary, voxel_size=voxel_size)
         return binary(
-            image, method=method, noise=s.noise if s.noise in ("auto", "flip", "gaussian") else "auto",
+            image, method=method, noise=s.noise,
             coupling=s.coupling, coupling_z=s.coupling_z, flip_rate=s.flip_rate, levels=s.levels,
             schedule=make_schedule(s.schedule, start=s.t_start, end=s.t_end), sweeps=s.sweeps,
             burn_in=s.burn_in, samples=s.samples, chains=s.chains, boundary=s.boundary,
@@ -178,7 +186,7 @@ def clean(image, *, settings: Settings | None = None, rng=None, progress=False,
 
     method = "mean" if s.method in ("auto", "mpm") else s.method
     return clean_grey(
-        image, method=method, noise=s.noise if s.noise in ("auto", "gaussian", "poisson-gaussian") else "auto",
+        image, method=method, noise=s.noise,
         sigma=s.sigma, gain=s.gain, read_variance=s.read_variance, strength=s.strength,
         schedule=make_schedule(s.schedule, start=s.t_start, end=s.t_end), sweeps=s.sweeps,
         burn_in=s.burn_in, samples=s.samples, chains=s.chains, rng=rng, progress=progress)
@@ -246,6 +254,8 @@ def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps
             raise io.InputError(path, f"output {target} already exists; choose another folder or allow overwriting")
     want_maps = (kind == "grey") if maps is None else bool(maps)
     s = settings.replace(kind=kind)
+    if str(loaded.metadata.get("axes", ""))[:1] == "C" and loaded.array.ndim == 3:
+        s = s.replace(stack="planes")  # channels are not neighbours in space: never couple them
     if want_maps and kind == "binary":
         s = s.replace(uncertainty=True)
     try:

@@ -27,7 +27,7 @@ class Diagnostics:
     chains_agree : bool or None
         ``rhat <= RHAT_LIMIT``; None when there was nothing to compare.
     final_energy : float
-        Posterior energy of the returned MAP state (or of the last sample).
+        Posterior energy of the returned estimate (the MAP state, or the MPM image).
     exact_energy : float or None
         Exact minimum energy by minimum cut, when a certificate was asked for.
     energy_gap : float or None

@@ -165,8 +165,17 @@ def _tiff_layout(series):
     return axes, shape, is_colour
 
 
+def _quiet_tifffile():
+    """tifffile logs its own warnings about odd files; ours is the one line per file."""
+    import logging
+
+    logging.getLogger("tifffile").setLevel(logging.ERROR)
+
+
 def _read_tiff(path, max_pixels):
     import tifffile
+
+    _quiet_tifffile()
 
     with tifffile.TiffFile(path) as tif:
         if not tif.series:
@@ -294,26 +303,31 @@ def voxel_size(metadata):
 def _read_png(path, max_pixels):
     from PIL import Image
 
-    with Image.open(path) as im:
-        _check_size(path, (im.size[1], im.size[0]), max_pixels)
-        old = Image.MAX_IMAGE_PIXELS
-        Image.MAX_IMAGE_PIXELS = None  # our own limit was checked above
-        try:
+    old = Image.MAX_IMAGE_PIXELS
+    Image.MAX_IMAGE_PIXELS = None  # Pillow checks at open; our own limit is checked below
+    try:
+        with Image.open(path) as im:
+            _check_size(path, (im.size[1], im.size[0]), max_pixels)
             im.load()
-        finally:
-            Image.MAX_IMAGE_PIXELS = old
-        mode = im.mode
-        if mode == "P":
-            im = im.convert("RGBA" if "transparency" in im.info else "RGB")
-            mode = im.mode
-        if mode in ("LA", "La", "PA"):
-            im = im.convert("L")
-            mode = "L"
-        array = np.array(im)
+            array, mode = _png_pixels(im)
+    finally:
+        Image.MAX_IMAGE_PIXELS = old
     if mode == "1":
         array = array.astype(bool)
     is_colour = array.ndim == 3 and array.shape[-1] in (3, 4)
     return array, {}, is_colour
+
+
+def _png_pixels(im):
+    """Pixels of a loaded Pillow image, palette and alpha resolved; ``(array, mode)``."""
+    mode = im.mode
+    if mode == "P":
+        im = im.convert("RGBA" if "transparency" in im.info else "RGB")
+        mode = im.mode
+    if mode in ("LA", "La", "PA"):
+        im = im.convert("L")
+        mode = "L"
+    return np.array(im), mode
 
 
 def _to_one_channel(array, colour):

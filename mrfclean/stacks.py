@@ -117,7 +117,7 @@ def clean_volume_binary(image, *, voxel_size=None, coupling="auto", coupling_z="
     CleanResult
         ``params["coupling_z_rule"]`` says how ``coupling_z`` was set.
     """
-    from .binary import _auto_noise, clean_binary
+    from .binary import FIT_SALT, _auto_noise, clean_binary
     from .fit.binary import fit_binary
     from .sampler import to_seed
 
@@ -153,7 +153,7 @@ def clean_volume_binary(image, *, voxel_size=None, coupling="auto", coupling_z="
     given = {"flip_rate": options.pop("flip_rate", "auto"), "levels": options.pop("levels", "auto")}
     fit = fit_binary(observed, noise=noise, coupling="auto", coupling_z="auto",
                      flip_rate=given["flip_rate"], levels=given["levels"],
-                     boundary=options.get("boundary", "free"), seed=seed)
+                     boundary=options.get("boundary", "free"), seed=seed ^ FIT_SALT)
     res = clean_binary(a, coupling=fit.coupling, coupling_z=fit.coupling * ratio, rng=seed,
                        **fixed_noise_options(fit.noise), **options)
     res.params["estimated"] = ["coupling"] + [k for k, v in given.items() if v == "auto"]

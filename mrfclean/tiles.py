@@ -51,6 +51,7 @@ import numpy as np
 from . import kernels
 from . import levels as lv
 from .estimates import CleanResult, Diagnostics, anneal, record_posterior, sample_posterior
+from .binary import FIT_SALT, POSTERIOR_SALT
 from .lattice import Grid
 from .models.binary import bernoulli_std, on_fraction
 from .sampler import START_SWEEP, ChainModel, Tally, to_seed
@@ -538,7 +539,7 @@ def clean_binary_tiled(image, *, tile=DEFAULT_TILE, method="mpm", noise="auto", 
         fix_z = float(coupling) * (ratio if ratio is not None else 1.0)
     fit = fit_binary(window, noise=noise, coupling=coupling,
                      coupling_z="auto" if fix_z is None else fix_z, flip_rate=flip_rate,
-                     levels=levels, boundary="free", seed=seed)
+                     levels=levels, boundary="free", seed=seed ^ FIT_SALT)
     beta, beta_z = fit.coupling, fit.coupling_z
     if Z == 1:
         rule = "single plane"
@@ -586,7 +587,7 @@ def clean_binary_tiled(image, *, tile=DEFAULT_TILE, method="mpm", noise="auto", 
     post = None
     if sampled:
         post = sample_posterior(model, burn_in=burn_in, samples=samples, chains=chains,
-                                seed=seed ^ 0x5A5A5A5A, progress=progress)
+                                seed=seed ^ POSTERIOR_SALT, progress=progress)
         post.run.states.clear()
         record_posterior(diag, post)
         params.update(burn_in=burn_in, samples=samples)

@@ -183,3 +183,10 @@ def test_usage_errors_exit_2(capsys):
     with pytest.raises(SystemExit) as e:
         main(["clean", "x.png", "-o", "out", "--chains", "0"])
     assert e.value.code == 2
+
+
+def test_noise_model_that_does_not_fit_the_image_is_refused(noisy_png, tmp_path, capsys):
+    rc = main(["clean", str(noisy_png), "-o", str(tmp_path / "out"), "--noise", "poisson-gaussian", *FAST])
+    assert rc != 0
+    line = _one_line_error(capsys)
+    assert line.startswith(str(noisy_png)) and "does not fit the binary model" in line

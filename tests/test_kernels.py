@@ -192,7 +192,9 @@ def _sweeps(model, seed, n=6, chains=3):
 
 @pytest.mark.parametrize("shape,boundary", [((2, 9, 11), "free"), ((3, 10, 12), "periodic"),
                                             ((33, 47), "free")])
-def test_sweeps_do_not_depend_on_the_number_of_threads(shape, boundary):
+def test_sweeps_do_not_depend_on_the_number_of_threads(shape, boundary, monkeypatch):
+    # the driver runs small lattices on one thread; lift that so two threads are really used
+    monkeypatch.setattr(sampler, "PARALLEL_MIN_SITES", 0)
     rng = np.random.default_rng(8)
     model = BinaryModel(rng.normal(0.0, 0.8, shape), coupling=0.5, coupling_z=0.35,
                         boundary=boundary)
