@@ -214,6 +214,15 @@ def output_paths(input_path, outdir, *, kind):
     return out, maps
 
 
+def check_targets(path, targets, *, overwrite=False):
+    """Refuse outputs that would replace the input, or an existing file unless ``overwrite``."""
+    for target in targets:
+        if io.same_file(target, path):
+            raise io.InputError(path, f"output {target} would overwrite the input; choose another folder")
+        if Path(target).exists() and not overwrite:
+            raise io.InputError(path, f"output {target} already exists; choose another folder or allow overwriting")
+
+
 def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps=None,
                colour=None, overwrite=False, max_pixels=io.DEFAULT_MAX_PIXELS,
                progress=False, output=None) -> FileOutcome:
@@ -247,11 +256,7 @@ def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps
     out, map_paths = output_paths(path, outdir, kind=kind)
     if output is not None:
         out = Path(output)
-    for target in (out, *map_paths.values()):
-        if io.same_file(target, path):
-            raise io.InputError(path, f"output {target} would overwrite the input; choose another folder")
-        if target.exists() and not overwrite:
-            raise io.InputError(path, f"output {target} already exists; choose another folder or allow overwriting")
+    check_targets(path, (out, *map_paths.values()), overwrite=overwrite)
     want_maps = (kind == "grey") if maps is None else bool(maps)
     s = settings.replace(kind=kind)
     if str(loaded.metadata.get("axes", ""))[:1] == "C" and loaded.array.ndim == 3:

@@ -69,24 +69,20 @@ def _auto_or_float(text):
         raise argparse.ArgumentTypeError(f"expected a number or 'auto', got {text!r}") from None
 
 
-def _positive_int(text):
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if v < 1:
-        raise argparse.ArgumentTypeError(f"expected a positive whole number, got {v}")
-    return v
+def _whole_number_at_least(low, words):
+    def parse(text):
+        try:
+            v = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+        if v < low:
+            raise argparse.ArgumentTypeError(f"expected {words}, got {v}")
+        return v
+    return parse
 
 
-def _count(text):
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if v < 0:
-        raise argparse.ArgumentTypeError(f"expected zero or more, got {v}")
-    return v
+_positive_int = _whole_number_at_least(1, "a positive whole number")
+_count = _whole_number_at_least(0, "zero or more")
 
 
 def _positive_float(text):

@@ -707,7 +707,7 @@ def clean_file_tiled(path, outdir, *, settings, rng=None, maps=None, colour=None
     from pathlib import Path
 
     from . import io
-    from .clean import FileOutcome, output_paths
+    from .clean import FileOutcome, check_targets, output_paths
     from .stacks import combine_planes
 
     t0 = time.perf_counter()
@@ -726,11 +726,7 @@ def clean_file_tiled(path, outdir, *, settings, rng=None, maps=None, colour=None
     out, map_paths = output_paths(path, outdir, kind=kind)
     if output is not None:
         out = Path(output)
-    for target in (out, *map_paths.values()):
-        if io.same_file(target, path):
-            raise io.InputError(path, f"output {target} would overwrite the input; choose another folder")
-        if target.exists() and not overwrite:
-            raise io.InputError(path, f"output {target} already exists; choose another folder or allow overwriting")
+    check_targets(path, (out, *map_paths.values()), overwrite=overwrite)
     want_maps = bool(maps)
     s = settings.replace(kind=kind, uncertainty=settings.uncertainty or want_maps)
     voxel = io.voxel_size(loaded.metadata)
