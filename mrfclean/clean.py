@@ -269,11 +269,18 @@ def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps
     except ValueError as exc:
         raise io.InputError(path, str(exc)) from None
     written = {}
-    io.write_image(out, result.estimate, fmt=loaded.format, metadata=loaded.metadata,
-                   overwrite=overwrite)
-    if want_maps:
-        for name, target in map_paths.items():
-            values = result.mean if name == "p_on" else result.std
-            if values is not None:
-                written[name] = io.write_map(target, values, overwrite=overwrite)
+    try:
+        io.write_image(out, result.estimate, fmt=loaded.format, metadata=loaded.metadata,
+                       overwrite=overwrite)
+        written["image"] = out
+        if want_maps:
+            for name, target in map_paths.items():
+                values = result.mean if name == "p_on" else result.std
+                if values is not None:
+                    written[name] = io.write_map(target, values, overwrite=overwrite)
+    except BaseException:
+        for p in written.values():  # all or nothing: no result without its maps
+            Path(p).unlink(missing_ok=True)
+        raise
+    written.pop("image")
     return FileOutcome(Path(path), out, written, result, time.perf_counter() - t0)

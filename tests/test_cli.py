@@ -190,3 +190,15 @@ def test_noise_model_that_does_not_fit_the_image_is_refused(noisy_png, tmp_path,
     assert rc != 0
     line = _one_line_error(capsys)
     assert line.startswith(str(noisy_png)) and "does not fit the binary model" in line
+
+
+def test_a_failed_map_write_leaves_no_result_behind(noisy_png, tmp_path, monkeypatch):
+    from mrfclean import io as mio
+
+    def broken(path, values, *, overwrite=False):
+        raise OSError("disk full")
+
+    monkeypatch.setattr(mio, "write_map", broken)
+    rc = main(["clean", str(noisy_png), "-o", str(tmp_path / "out"), "--maps", "-j", "1", *FAST])
+    assert rc != 0
+    assert not (tmp_path / "out" / "blobs.png").exists()
