@@ -13,7 +13,6 @@ from __future__ import annotations
 import argparse
 import signal
 import sys
-from pathlib import Path
 
 from . import __version__, io
 from .clean import KINDS, METHODS

@@ -559,53 +559,6 @@ def gmrf_diagonal(w, offsets, dw, out):
                     orow[j] += wrow[j - dj]
 
 
-@njit(parallel=True, cache=True)
-def pcg_step(x, r, p, q, alpha, minv, zr, rows_rz, rows_rr):
-    """``x += alpha p``, ``r -= alpha q``, ``zr = minv r``; per-row sums of ``r zr`` and ``r r``.
-
-    ``alpha`` has one entry per right-hand side (0 freezes a converged one).
-    """
-    R, Z, H, W = x.shape
-    for k in prange(Z * H):
-        z = k // H
-        i = k - z * H
-        mrow = minv[z, i]
-        for s in range(R):
-            a = alpha[s]
-            xrow = x[s, z, i]
-            rrow = r[s, z, i]
-            prow = p[s, z, i]
-            qrow = q[s, z, i]
-            zrow = zr[s, z, i]
-            acc = 0.0
-            acc2 = 0.0
-            for j in range(W):
-                xrow[j] += a * prow[j]
-                rj = rrow[j] - a * qrow[j]
-                rrow[j] = rj
-                zj = mrow[j] * rj
-                zrow[j] = zj
-                acc += rj * zj
-                acc2 += rj * rj
-            rows_rz[s, k] = acc
-            rows_rr[s, k] = acc2
-
-
-@njit(parallel=True, cache=True)
-def pcg_direction(p, zr, beta):
-    """``p = zr + beta p`` for every right-hand side."""
-    R, Z, H, W = p.shape
-    for k in prange(Z * H):
-        z = k // H
-        i = k - z * H
-        for s in range(R):
-            b = beta[s]
-            prow = p[s, z, i]
-            zrow = zr[s, z, i]
-            for j in range(W):
-                prow[j] = zrow[j] + b * prow[j]
-
-
 @njit(inline="always", cache=True)
 def _gsm_logits(logamp, prec, o, d2, lam, inv_t, lp):
     """Tempered log-probabilities of the scales of one clique; returns their maximum."""
@@ -620,15 +573,10 @@ def _gsm_logits(logamp, prec, o, d2, lam, inv_t, lp):
 
 
 @njit(parallel=True, cache=True)
-def gsm_draw_weights(x, offsets, logamp, prec, strength, temperature, key, w):
-    """Draw every clique's scale given the image and store its precision in ``w``.
+def _gsm_weights(x, offsets, logamp, prec, strength, temperature, key, mean, w):
+    """Scale weights of every clique: drawn (``mean`` False) or posterior means (True).
 
-    Clique ``(o, p)`` with difference ``d`` takes component ``c`` with probability
-    proportional to ``(exp(logamp[o, c]) exp(-strength[o] prec[o, c] d^2 / 2))^(1/T)``
-    and gets weight ``strength[o] * prec[o, c]`` (the tempered image update then
-    scales the whole precision by ``1/T`` itself).  At ``T = 0`` the most
-    probable component is taken (the half-quadratic choice).  Weights of
-    cliques that leave the lattice are set to 0.
+    Shared body of :func:`gsm_draw_weights` and :func:`gsm_mean_weights`.
     """
     Z, H, W = x.shape
     n = offsets.shape[0]
@@ -660,6 +608,16 @@ def gsm_draw_weights(x, offsets, logamp, prec, strength, temperature, key, w):
             for j in range(lo, hi):
                 d = nrow[j + dj] - xrow[j]
                 d2 = d * d
+                if mean:
+                    m = _gsm_logits(logamp, prec, o, d2, lam, 1.0, lp)
+                    tot = 0.0
+                    num = 0.0
+                    for c in range(K):
+                        e = np.exp(lp[c] - m)
+                        tot += e
+                        num += e * prec[o, c]
+                    wrow[j] = lam * num / tot
+                    continue
                 if temperature > 0.0:
                     m = _gsm_logits(logamp, prec, o, d2, lam, inv_t, lp)
                     tot = 0.0
@@ -683,7 +641,19 @@ def gsm_draw_weights(x, offsets, logamp, prec, strength, temperature, key, w):
                 wrow[j] = lam * prec[o, c]
 
 
-@njit(parallel=True, cache=True)
+def gsm_draw_weights(x, offsets, logamp, prec, strength, temperature, key, w):
+    """Draw every clique's scale given the image and store its precision in ``w``.
+
+    Clique ``(o, p)`` with difference ``d`` takes component ``c`` with probability
+    proportional to ``(exp(logamp[o, c]) exp(-strength[o] prec[o, c] d^2 / 2))^(1/T)``
+    and gets weight ``strength[o] * prec[o, c]`` (the tempered image update then
+    scales the whole precision by ``1/T`` itself).  At ``T = 0`` the most
+    probable component is taken (the half-quadratic choice).  Weights of
+    cliques that leave the lattice are set to 0.
+    """
+    _gsm_weights(x, offsets, logamp, prec, strength, temperature, key, False, w)
+
+
 def gsm_mean_weights(x, offsets, logamp, prec, strength, w):
     """Posterior-mean precision of every clique given the image (half-quadratic weights).
 
@@ -691,40 +661,7 @@ def gsm_mean_weights(x, offsets, logamp, prec, strength, w):
     reweighted least-squares step; for a Gaussian scale mixture this step never
     raises the energy (Geman & Reynolds 1992; Nikolova & Ng 2005).
     """
-    Z, H, W = x.shape
-    n = offsets.shape[0]
-    K = logamp.shape[1]
-    for k in prange(Z * H):
-        z = k // H
-        i = k - z * H
-        lp = np.empty(K)
-        xrow = x[z, i]
-        for o in range(n):
-            wrow = w[o, z, i]
-            zf = z + offsets[o, 0]
-            i_f = i + offsets[o, 1]
-            dj = offsets[o, 2]
-            lam = strength[o]
-            if not (0 <= zf < Z and 0 <= i_f < H):
-                for j in range(W):
-                    wrow[j] = 0.0
-                continue
-            nrow = x[zf, i_f]
-            lo, hi = _span(dj, W)
-            for j in range(0, lo):
-                wrow[j] = 0.0
-            for j in range(hi, W):
-                wrow[j] = 0.0
-            for j in range(lo, hi):
-                d = nrow[j + dj] - xrow[j]
-                m = _gsm_logits(logamp, prec, o, d * d, lam, 1.0, lp)
-                tot = 0.0
-                num = 0.0
-                for c in range(K):
-                    e = np.exp(lp[c] - m)
-                    tot += e
-                    num += e * prec[o, c]
-                wrow[j] = lam * num / tot
+    _gsm_weights(x, offsets, logamp, prec, strength, 1.0, np.uint64(0), True, w)
 
 
 @njit(parallel=True, cache=True)

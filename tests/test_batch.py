@@ -10,7 +10,6 @@ computed directly with numpy.
 from __future__ import annotations
 
 import csv
-import json
 
 import numpy as np
 import pytest

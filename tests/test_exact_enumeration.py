@@ -19,7 +19,6 @@ must lie within the t quantile of a two-sided level ``ALPHA / n_quantities``
 ``ALPHA = 1e-3``.
 """
 
-import numba
 import numpy as np
 import pytest
 from scipy import linalg, stats
@@ -31,15 +30,9 @@ from mrfclean.sampler import Tally
 from mrfclean.schedules import Constant
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    # Results do not depend on the thread count (tests/test_kernels.py checks it);
-    # on lattices a few sites wide the fork-join of two threads costs more than the
-    # sweep, so these tests run the kernels on one thread.
-    before = numba.get_num_threads()
-    numba.set_num_threads(1)
-    yield
-    numba.set_num_threads(before)
+# Results do not depend on the thread count (tests/test_kernels.py checks it); on
+# these small lattices one thread is faster, and steadier when the machine is shared.
+pytestmark = pytest.mark.usefixtures("one_numba_thread")
 
 
 ALPHA = 1e-3

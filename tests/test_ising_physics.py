@@ -29,7 +29,6 @@ times) is close to normal, so (mean - exact) / se follows Student's t with
 ``BATCHES - 1`` degrees of freedom; checks use the two-sided 1e-3 quantile.
 """
 
-import numba
 import numpy as np
 import pytest
 from scipy import special, stats
@@ -46,14 +45,9 @@ SAMPLES = 2000
 T_CRIT = stats.t.ppf(1.0 - 0.5e-3, BATCHES - 1)  # two-sided 1e-3
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    # Results do not depend on the thread count (tests/test_kernels.py checks it);
-    # one thread keeps a 64 x 64 sweep fast when the test machine is shared.
-    before = numba.get_num_threads()
-    numba.set_num_threads(1)
-    yield
-    numba.set_num_threads(before)
+# Results do not depend on the thread count (tests/test_kernels.py checks it); on
+# these small lattices one thread is faster, and steadier when the machine is shared.
+pytestmark = pytest.mark.usefixtures("one_numba_thread")
 
 
 def onsager_energy(K):

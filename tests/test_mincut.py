@@ -6,7 +6,6 @@ posteriori estimation for binary images", J. R. Stat. Soc. B 51 (1989)
 exact minima computed in the tests by enumerating every configuration.
 """
 
-import numba
 import numpy as np
 import pytest
 from skimage.data import binary_blobs
@@ -17,14 +16,9 @@ from mrfclean.models.binary import BinaryModel
 from mrfclean.schedules import Geometric
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    # Results do not depend on the thread count (tests/test_kernels.py checks it);
-    # one thread keeps the small sweeps fast when the test machine is shared.
-    before = numba.get_num_threads()
-    numba.set_num_threads(1)
-    yield
-    numba.set_num_threads(before)
+# Results do not depend on the thread count (tests/test_kernels.py checks it); on
+# these small lattices one thread is faster, and steadier when the machine is shared.
+pytestmark = pytest.mark.usefixtures("one_numba_thread")
 
 
 @pytest.mark.parametrize("shape,boundary", [((3, 4), "free"), ((4, 5), "free"),

@@ -21,7 +21,7 @@ from mrfclean import Settings, clean_file, io, kernels
 from mrfclean.binary import clean_binary
 from mrfclean.diagnostics import ChainsDisagree
 from mrfclean.lattice import Grid
-from mrfclean.models.binary import BinaryModel, FlipNoise, TwoLevelGaussian
+from mrfclean.models.binary import BinaryModel, FlipNoise
 from mrfclean.tiles import RawField, TiledBinaryModel, band_bounds, clean_binary_tiled
 
 SEED = 99
