@@ -20,14 +20,6 @@ class ChainsDisagree(UserWarning):
     """Warned when chains have not converged to the same distribution (R-hat too large)."""
 
 
-class DiagnosticError(RuntimeError):
-    """A diagnostic could not conclude; ``partial`` carries the estimate obtained so far."""
-
-    def __init__(self, message, partial=None):
-        super().__init__(message)
-        self.partial = partial
-
-
 #: R-hat above this is reported as disagreement.  Common practice; 1.2 is the
 #: value Brooks & Gelman (1998, J. Comput. Graph. Stat. 7:434-455) used (from
 #: memory).  The magnetisation of an image posterior has a long autocorrelation

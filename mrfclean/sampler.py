@@ -90,6 +90,7 @@ class Tally:
         raise NotImplementedError
 
     def merge(self, other: "Tally") -> None:  # pragma: no cover
+        """Add the tally of another, independent run (the driver itself keeps one tally)."""
         raise NotImplementedError
 
     def mean(self) -> np.ndarray:  # pragma: no cover

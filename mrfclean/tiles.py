@@ -197,9 +197,9 @@ class RawField:
 class SharedSpinTally(Tally):
     """Counts of "on" per site, in one count array shared by every tally of a model.
 
-    The chains of a run are tallied one after another and only their merged
-    total is used, so one array is enough: :meth:`merge` adds the number of
-    kept sweeps only.  Counts are uint16 (uint32 beyond 65535 sweeps).
+    The driver tallies every chain of a run into one tally, so one array is
+    enough; :meth:`merge` (tallies sharing the store) adds the number of kept
+    sweeps only.  Counts are uint16 (uint32 beyond 65535 sweeps).
     """
 
     def __init__(self, store):
