@@ -443,10 +443,11 @@ def count_mismatch(P, T, W, q):
 #
 # Random numbers: the categorical draw of clique ``(o, p)`` uses counter
 # ``o * N + p`` of the sweep's key (``N = Z H W``); the perturbation normals use
-# a second key derived from it, counters ``2 (o * N + p)`` and ``+ 1`` for the
-# clique normal (o = 0 .. n-1) and ``2 (n N + p)``, ``+ 1`` for the data normal.
+# a second key derived from it, normal counter ``o * N + p`` for the clique
+# normal (o = 0 .. n-1) and ``n N + p`` for the data normal (see :func:`normal`).
 
 _GREY_NOISE_SALT = np.uint64(0x6A09E667F3BCC909)
+_GREY_START_SALT = np.uint64(0xBB67AE8584CAA73B)
 _TWO_PI = 6.283185307179586
 
 
@@ -457,23 +458,46 @@ def derive_key(key, salt):
 
 
 @njit(inline="always", cache=True)
-def normal(key, counter):
-    """Standard normal variate for ``counter`` of stream ``key`` (Box-Muller, cosine branch).
+def _polar(key, q):
+    """Radius and angle of Box-Muller pair ``q``: uniforms ``2 q`` and ``2 q + 1``."""
+    u1 = 1.0 - uniform(key, 2 * q)  # in (0, 1]: the logarithm stays finite
+    u2 = uniform(key, 2 * q + 1)
+    return np.sqrt(-2.0 * np.log(u1)), _TWO_PI * u2
 
-    Uses counters ``2 counter`` and ``2 counter + 1`` of :func:`uniform`; ``1 - u``
-    keeps the logarithm finite.
+
+@njit(inline="always", cache=True)
+def normal(key, counter):
+    """Standard normal variate for ``counter`` of stream ``key`` (Box-Muller).
+
+    Counters ``2 q`` and ``2 q + 1`` are the cosine and sine branches of one
+    Box-Muller pair (two independent normals from uniforms ``2 q`` and
+    ``2 q + 1``); :func:`fill_normals` makes both from one pair of uniforms.
     """
-    u1 = 1.0 - uniform(key, 2 * counter)
-    u2 = uniform(key, 2 * counter + 1)
-    return np.sqrt(-2.0 * np.log(u1)) * np.cos(_TWO_PI * u2)
+    r, t = _polar(key, counter >> 1)
+    return r * (np.cos(t) if (counter & 1) == 0 else np.sin(t))
+
+
+@njit(inline="always", cache=True)
+def fill_normals(key, start, out, lo, hi):
+    """``out[j] = normal(key, start + j)`` for ``lo <= j < hi``, one logarithm per pair."""
+    j = lo
+    if j < hi and (start + j) & 1:
+        out[j] = normal(key, start + j)
+        j += 1
+    while j + 1 < hi:
+        r, t = _polar(key, (start + j) >> 1)
+        out[j] = r * np.cos(t)
+        out[j + 1] = r * np.sin(t)
+        j += 2
+    if j < hi:
+        out[j] = normal(key, start + j)
 
 
 @njit(cache=True)
 def normal_many(key, start, n):
     """``n`` normals at counters ``start .. start + n - 1``, for tests."""
     out = np.empty(n)
-    for k in range(n):
-        out[k] = normal(key, start + k)
+    fill_normals(key, start, out, 0, n)
     return out
 
 
@@ -559,99 +583,162 @@ def gmrf_diagonal(w, offsets, dw, out):
                     orow[j] += wrow[j - dj]
 
 
+#: ``comp`` value of a clique that leaves the lattice (no weight).
+NO_CLIQUE = 255
+
+_GSM_DRAW = 0
+_GSM_MEAN = 1
+_GSM_ENERGY = 2
+
+
 @njit(inline="always", cache=True)
-def _gsm_logits(logamp, prec, o, d2, lam, inv_t, lp):
-    """Tempered log-probabilities of the scales of one clique; returns their maximum."""
-    K = logamp.shape[1]
+def _gsm_clique(la, pr, lam, d2, it, lp):
+    """Tempered logits of one clique into ``lp`` as ``exp(logit - max)``; returns (max, sum, argmax)."""
+    K = la.shape[0]
     m = -np.inf
+    cm = 0
     for c in range(K):
-        v = (logamp[o, c] - 0.5 * lam * prec[o, c] * d2) * inv_t
+        v = (la[c] - 0.5 * lam * pr[c] * d2) * it
         lp[c] = v
         if v > m:
             m = v
-    return m
+            cm = c
+    tot = 0.0
+    for c in range(K):
+        e = np.exp(lp[c] - m)
+        lp[c] = e
+        tot += e
+    return m, tot, cm
 
 
 @njit(parallel=True, cache=True)
-def _gsm_weights(x, offsets, logamp, prec, strength, temperature, key, mean, w):
-    """Scale weights of every clique: drawn (``mean`` False) or posterior means (True).
+def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode, w, comp, rows):
+    """Shared body of :func:`gsm_draw_components`, :func:`gsm_mean_weights` and the energy.
 
-    Shared body of :func:`gsm_draw_weights` and :func:`gsm_mean_weights`.
+    Rows of the lattice are independent: row ``(z, i)`` owns the cliques whose
+    tail it holds.  ``mode`` draw: each clique's component into ``comp`` and,
+    in ``rows``, the row's energy (prior at T = 1 with the scales summed out,
+    plus data term) of ``x``.  ``mode`` mean: posterior-mean weights into ``w``.
+    ``mode`` energy: only the prior energy.
     """
     Z, H, W = x.shape
     n = offsets.shape[0]
     K = logamp.shape[1]
     N = Z * H * W
-    inv_t = 1.0 / temperature if temperature > 0.0 else 0.0
+    it = 1.0 / temperature if temperature > 0.0 else 1.0
+    draw = mode == _GSM_DRAW
     for k in prange(Z * H):
         z = k // H
         i = k - z * H
         lp = np.empty(K)
         xrow = x[z, i]
+        acc = 0.0
+        if draw:
+            yrow = y[z, i]
+            drow = dw[z, i]
+            for j in range(W):
+                r = xrow[j] - yrow[j]
+                acc += 0.5 * drow[j] * r * r
         for o in range(n):
-            wrow = w[o, z, i]
             zf = z + offsets[o, 0]
             i_f = i + offsets[o, 1]
             dj = offsets[o, 2]
             lam = strength[o]
+            lo, hi = _span(dj, W)
             if not (0 <= zf < Z and 0 <= i_f < H):
-                for j in range(W):
+                lo, hi = 0, 0
+            if mode == _GSM_MEAN:
+                wrow = w[o, z, i]
+                for j in range(0, lo):
                     wrow[j] = 0.0
+                for j in range(hi, W):
+                    wrow[j] = 0.0
+            elif draw:
+                crow = comp[o, z, i]
+                for j in range(0, lo):
+                    crow[j] = NO_CLIQUE
+                for j in range(hi, W):
+                    crow[j] = NO_CLIQUE
+            if hi <= lo:
                 continue
             nrow = x[zf, i_f]
-            lo, hi = _span(dj, W)
-            for j in range(0, lo):
-                wrow[j] = 0.0
-            for j in range(hi, W):
-                wrow[j] = 0.0
+            la = logamp[o]
+            pr = prec[o]
             base = o * N + (z * H + i) * W
             for j in range(lo, hi):
                 d = nrow[j + dj] - xrow[j]
                 d2 = d * d
-                if mean:
-                    m = _gsm_logits(logamp, prec, o, d2, lam, 1.0, lp)
-                    tot = 0.0
+                if mode == _GSM_MEAN:
+                    m, tot, c = _gsm_clique(la, pr, lam, d2, 1.0, lp)
                     num = 0.0
                     for c in range(K):
-                        e = np.exp(lp[c] - m)
-                        tot += e
-                        num += e * prec[o, c]
+                        num += lp[c] * pr[c]
                     wrow[j] = lam * num / tot
                     continue
-                if temperature > 0.0:
-                    m = _gsm_logits(logamp, prec, o, d2, lam, inv_t, lp)
-                    tot = 0.0
-                    for c in range(K):
-                        e = np.exp(lp[c] - m)
-                        lp[c] = e
-                        tot += e
-                    u = uniform(key, base + j) * tot
-                    c = 0
-                    acc = lp[0]
-                    while acc <= u and c < K - 1:
-                        c += 1
-                        acc += lp[c]
-                else:
-                    m = _gsm_logits(logamp, prec, o, d2, lam, 1.0, lp)
-                    c = 0
-                    for cc in range(K):
-                        if lp[cc] == m:
-                            c = cc
-                            break
-                wrow[j] = lam * prec[o, c]
+                m, tot, c = _gsm_clique(la, pr, lam, d2, it if draw else 1.0, lp)
+                if draw:
+                    if temperature > 0.0:
+                        u = uniform(key, base + j) * tot
+                        c = 0
+                        a = lp[0]
+                        while a <= u and c < K - 1:
+                            c += 1
+                            a += lp[c]
+                    crow[j] = c
+                    if it != 1.0:  # the energy is untempered: redo the sums at T = 1
+                        m, tot, c = _gsm_clique(la, pr, lam, d2, 1.0, lp)
+                acc -= m + np.log(tot)
+        rows[k] = acc
 
 
-def gsm_draw_weights(x, offsets, logamp, prec, strength, temperature, key, w):
-    """Draw every clique's scale given the image and store its precision in ``w``.
+def gsm_draw_components(x, y, dw, offsets, logamp, prec, strength, temperature, key, comp):
+    """Draw every clique's scale given the image; return the energy of the image.
 
     Clique ``(o, p)`` with difference ``d`` takes component ``c`` with probability
-    proportional to ``(exp(logamp[o, c]) exp(-strength[o] prec[o, c] d^2 / 2))^(1/T)``
-    and gets weight ``strength[o] * prec[o, c]`` (the tempered image update then
-    scales the whole precision by ``1/T`` itself).  At ``T = 0`` the most
-    probable component is taken (the half-quadratic choice).  Weights of
-    cliques that leave the lattice are set to 0.
+    proportional to ``(exp(logamp[o, c]) exp(-strength[o] prec[o, c] d^2 / 2))^(1/T)``;
+    ``comp[o, p]`` receives ``c`` (:data:`NO_CLIQUE` where the clique leaves the
+    lattice), and :func:`gsm_expand` turns it into the weight
+    ``strength[o] * prec[o, c]`` (the tempered image update then scales the
+    whole precision by ``1/T`` itself).  At ``T = 0`` the most probable
+    component is taken (the half-quadratic choice).
+
+    Returns ``E(x)``: the prior energy with the scales summed out, at
+    temperature 1, plus the data energy ``sum (x - y)^2 dw / 2`` -- computed
+    from the same logits, so a sweep needs no separate energy pass.
     """
-    _gsm_weights(x, offsets, logamp, prec, strength, temperature, key, False, w)
+    rows = np.empty(x.shape[0] * x.shape[1])
+    _gsm_rows(x, y, dw, offsets, logamp, prec, strength, float(temperature), np.uint64(key),
+              _GSM_DRAW, _EMPTY4, comp, rows)
+    return _ordered_sum(rows)
+
+
+_EMPTY4 = np.zeros((0, 0, 0, 0))
+_EMPTY4U = np.zeros((0, 0, 0, 0), np.uint8)
+
+
+@njit(cache=True)
+def _ordered_sum(rows):
+    e = 0.0
+    for k in range(rows.shape[0]):
+        e += rows[k]
+    return e
+
+
+@njit(parallel=True, cache=True)
+def gsm_expand(comp, prec, strength, w):
+    """``w[o, p] = strength[o] * prec[o, comp[o, p]]`` (0 where ``comp`` is :data:`NO_CLIQUE`)."""
+    n, Z, H, W = comp.shape
+    for k in prange(n * Z * H):
+        o = k // (Z * H)
+        r = k - o * Z * H
+        z = r // H
+        i = r - z * H
+        crow = comp[o, z, i]
+        wrow = w[o, z, i]
+        lam = strength[o]
+        for j in range(W):
+            c = crow[j]
+            wrow[j] = 0.0 if c == NO_CLIQUE else lam * prec[o, c]
 
 
 def gsm_mean_weights(x, offsets, logamp, prec, strength, w):
@@ -661,84 +748,86 @@ def gsm_mean_weights(x, offsets, logamp, prec, strength, w):
     reweighted least-squares step; for a Gaussian scale mixture this step never
     raises the energy (Geman & Reynolds 1992; Nikolova & Ng 2005).
     """
-    _gsm_weights(x, offsets, logamp, prec, strength, 1.0, np.uint64(0), True, w)
+    rows = np.empty(x.shape[0] * x.shape[1])
+    _gsm_rows(x, x, x, offsets, logamp, prec, strength, 1.0, np.uint64(0), _GSM_MEAN, w,
+              _EMPTY4U, rows)
 
 
-@njit(parallel=True, cache=True)
 def gsm_prior_energy(x, offsets, logamp, prec, strength):
     """``-sum_cliques log sum_c exp(logamp[o, c] - strength[o] prec[o, c] d^2 / 2)``."""
-    Z, H, W = x.shape
-    n = offsets.shape[0]
-    K = logamp.shape[1]
-    rows = np.zeros(Z * H)
-    for k in prange(Z * H):
-        z = k // H
-        i = k - z * H
-        lp = np.empty(K)
-        xrow = x[z, i]
-        acc = 0.0
-        for o in range(n):
-            zf = z + offsets[o, 0]
-            i_f = i + offsets[o, 1]
-            dj = offsets[o, 2]
-            if not (0 <= zf < Z and 0 <= i_f < H):
-                continue
-            nrow = x[zf, i_f]
-            lo, hi = _span(dj, W)
-            for j in range(lo, hi):
-                d = nrow[j + dj] - xrow[j]
-                m = _gsm_logits(logamp, prec, o, d * d, strength[o], 1.0, lp)
-                tot = 0.0
-                for c in range(K):
-                    tot += np.exp(lp[c] - m)
-                acc -= m + np.log(tot)
-        rows[k] = acc
-    e = 0.0
-    for k in range(Z * H):
-        e += rows[k]
-    return e
+    rows = np.empty(x.shape[0] * x.shape[1])
+    _gsm_rows(x, x, x, offsets, logamp, prec, strength, 1.0, np.uint64(0), _GSM_ENERGY,
+              _EMPTY4, _EMPTY4U, rows)
+    return _ordered_sum(rows)
 
 
 @njit(parallel=True, cache=True)
-def gmrf_perturbation(w, offsets, dw, key, scale, out):
-    """``out = scale * (diag(dw)^(1/2) e1 + sum_o D_o^T diag(w_o)^(1/2) e2_o)``, e1, e2 standard normal.
-
-    Its covariance is ``scale^2 Q``: solving ``Q e = out`` gives a draw of
-    ``N(0, scale^2 Q^-1)`` (perturbation-optimisation, Papandreou & Yuille 2010).
-    Each clique's normal is regenerated from its counter at both of its ends, so
-    no two rows write the same value.
-    """
+def _clique_normals(w, offsets, dw, key, buf, out):
+    """``buf[o, p] = sqrt(w[o, p]) e2[o, p]`` (0 off the lattice) and ``out[p] = e1[p]``."""
     Z, H, W = dw.shape
     n = offsets.shape[0]
     N = Z * H * W
+    for k in prange((n + 1) * Z * H):
+        o = k // (Z * H)
+        r = k - o * Z * H
+        z = r // H
+        i = r - z * H
+        base = (z * H + i) * W
+        if o == n:  # the data normals
+            fill_normals(key, n * N + base, out[z, i], 0, W)
+            continue
+        brow = buf[o, z, i]
+        wrow = w[o, z, i]
+        lo, hi = 0, 0
+        if 0 <= z + offsets[o, 0] < Z and 0 <= i + offsets[o, 1] < H:
+            lo, hi = _span(offsets[o, 2], W)
+        for j in range(0, lo):
+            brow[j] = 0.0
+        for j in range(hi, W):
+            brow[j] = 0.0
+        fill_normals(key, o * N + base, brow, lo, hi)
+        for j in range(lo, hi):
+            brow[j] *= np.sqrt(wrow[j])
+
+
+@njit(parallel=True, cache=True)
+def _gather_perturbation(offsets, dw, buf, scale, out):
+    Z, H, W = dw.shape
+    n = offsets.shape[0]
     for k in prange(Z * H):
         z = k // H
         i = k - z * H
         orow = out[z, i]
         drow = dw[z, i]
-        base = (z * H + i) * W
         for j in range(W):
-            orow[j] = np.sqrt(drow[j]) * normal(key, n * N + base + j)
+            orow[j] *= np.sqrt(drow[j])
         for o in range(n):
-            dz = offsets[o, 0]
-            di = offsets[o, 1]
+            brow = buf[o, z, i]
+            for j in range(W):  # p is the tail of clique (p, p + o)
+                orow[j] -= brow[j]
+            zb = z - offsets[o, 0]
+            ib = i - offsets[o, 1]
             dj = offsets[o, 2]
-            if 0 <= z + dz < Z and 0 <= i + di < H:  # p is the tail of clique (p, p + o)
-                wrow = w[o, z, i]
-                lo, hi = _span(dj, W)
-                cb = o * N + base
-                for j in range(lo, hi):
-                    orow[j] -= np.sqrt(wrow[j]) * normal(key, cb + j)
-            zb = z - dz
-            ib = i - di
             if 0 <= zb < Z and 0 <= ib < H:  # p is the head of clique (p - o, p)
-                wrow = w[o, zb, ib]
+                brow = buf[o, zb, ib]
                 lo, hi = _span(-dj, W)
-                cb = o * N + (zb * H + ib) * W - dj
                 for j in range(lo, hi):
-                    orow[j] += np.sqrt(wrow[j - dj]) * normal(key, cb + j)
+                    orow[j] += brow[j - dj]
         for j in range(W):
             orow[j] *= scale
+
+
+def gmrf_perturbation(w, offsets, dw, key, scale, out, buf):
+    """``out = scale * (diag(dw)^(1/2) e1 + sum_o D_o^T diag(w_o)^(1/2) e2_o)``, e1, e2 standard normal.
+
+    Its covariance is ``scale^2 Q``: solving ``Q e = out`` gives a draw of
+    ``N(0, scale^2 Q^-1)`` (perturbation-optimisation, Papandreou & Yuille 2010).
+    Each clique's normal (counter ``o N + p``) is drawn once into ``buf`` (shape
+    of ``w``) and then gathered at both of its ends; the data normal of pixel
+    ``p`` has counter ``n N + p``.
+    """
+    _clique_normals(w, offsets, dw, np.uint64(key), buf, out)
+    _gather_perturbation(offsets, dw, buf, float(scale), out)
 
 
 @njit(inline="always", cache=True)

@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 import scipy.sparse.linalg as sla
+from scipy.stats import chi2 as chi2_dist
 
 from mrfclean import kernels, sampler
 from mrfclean.models.grey import GreyModel, GSMPrior
@@ -151,3 +152,49 @@ def test_zero_temperature_sweep_is_the_conditional_mean():
     Q = sparse_precision(m, m.w)
     np.testing.assert_allclose(st.x.ravel(), sla.spsolve(Q, m.b.ravel()), atol=1e-7)
     assert np.array_equal(st.x, st.mu)
+
+
+@pytest.mark.parametrize("temperature", [1.0, 0.3])
+def test_energy_from_the_scale_draw_equals_direct_energy(temperature):
+    """The energy a sweep gets from its scale-draw pass equals ``energy_of`` (an independent
+    kernel: log-sum-exp per clique plus the data term), at T = 1 and while annealing."""
+    gen = np.random.default_rng(12)
+    y = gen.normal(size=(2, 21, 19))
+    m = GreyModel(y, variance=gen.uniform(0.2, 1.0, y.shape), prior=GSMPrior.load().with_strength(1.3, 0.7))
+    st = m.start(0, 1)
+    for k in range(2):
+        m.sweep(st, temperature, int(kernels.stream_key(4, 0, k)))
+        direct = m.energy_of(st.x)
+        assert m.energy(st) == pytest.approx(direct, rel=1e-12)
+
+
+def test_scale_draws_follow_their_conditional_probabilities():
+    """Components drawn for one clique difference, many times, against the exact categorical
+    probabilities ``alpha_c exp(-lam pi_c d^2 / 2)`` normalised (chi-square, 5-sigma-ish cut).
+
+    A 1 x 2 image has one horizontal clique; each draw uses a new stream key.
+    """
+    prior = GSMPrior.load()
+    y = np.array([[0.0, 0.08]])
+    m = GreyModel(y, variance=1.0, prior=prior)
+    o = 0  # the horizontal offset (0, 0, 1)
+    assert tuple(m.offsets[o]) == (0, 0, 1)
+    d2 = 0.08**2
+    lp = m.logamp[o] - 0.5 * m.strength[o] * m.prec[o] * d2
+    p = np.exp(lp - lp.max())
+    p /= p.sum()
+    comp = np.empty((len(m.offsets), 1, 1, 2), np.uint8)
+    draws = 20_000
+    counts = np.zeros(len(p))
+    x = y.reshape(1, 1, 2)
+    for k in range(draws):
+        kernels.gsm_draw_components(x, x, m.dw, m.offsets, m.logamp, m.prec, m.strength, 1.0,
+                                    np.uint64(kernels.stream_key(77, 0, k)), comp)
+        counts[comp[o, 0, 0, 0]] += 1
+    keep = p * draws >= 5  # chi-square needs expected counts of 5 or more (common practice)
+    expected = p[keep] * draws
+    chi2 = float(np.sum((counts[keep] - expected) ** 2 / expected))
+    # pooled tail: components too rare to test on their own must stay rare
+    assert counts[~keep].sum() <= max(5 * p[~keep].sum() * draws, 5)
+    # scipy's chi-square with keep.sum() - 1 degrees of freedom: fails 1 run in 1000 by chance
+    assert chi2 < chi2_dist.ppf(0.999, keep.sum() - 1)

@@ -125,6 +125,8 @@ class GSMPrior:
                 raise ValueError(f"{name} must be a non-negative finite number, got {v!r}")
         if len({len(g.prec) for g in self.groups}) != 1:
             raise ValueError("all prior groups must have the same number of scales")
+        if self.groups and len(self.groups[0].prec) >= kernels.NO_CLIQUE:
+            raise ValueError(f"a prior has at most {kernels.NO_CLIQUE - 1} scales")
 
     # --- construction -----------------------------------------------------------
     @classmethod
@@ -250,19 +252,22 @@ class PoissonGaussianNoise:
 # chain state and tally
 # ---------------------------------------------------------------------------------------
 class GreyState:
-    """One chain's position: the sampled image ``x`` and its conditional mean ``mu``.
+    """One chain's position: the sampled image ``x``, its conditional mean ``mu``, the scales.
 
-    ``mu = E[x | scales, y]`` for the scales drawn in the last sweep; averaging
-    it over sweeps is the Rao-Blackwellised posterior mean.
+    ``mu = E[x | scales, y]`` for the scales the last image update used;
+    averaging it over sweeps is the Rao-Blackwellised posterior mean.  ``comp``
+    holds the scale components drawn from ``x`` (for the next image update)
+    and ``energy`` the energy of ``x``, computed in the same pass.
     """
 
-    __slots__ = ("x", "mu", "energy", "iterations")
+    __slots__ = ("x", "mu", "energy", "iterations", "comp")
 
     def __init__(self, x, mu=None):
         self.x = np.ascontiguousarray(x, dtype=np.float64)
         self.mu = self.x.copy() if mu is None else np.ascontiguousarray(mu, dtype=np.float64)
         self.energy = None
         self.iterations = 0
+        self.comp = None
 
 
 class GreyTally(Tally):
@@ -388,6 +393,7 @@ class GreyModel(ChainModel):
         self._diag = np.zeros(shape)
         self._minv = np.zeros(shape)
         self._eta = np.zeros(shape)
+        self._pbuf = None  # clique normals of a perturbation, allocated at the first draw
         self.stats = SolverStats()
 
     # --- linear algebra -------------------------------------------------------------
@@ -426,15 +432,33 @@ class GreyModel(ChainModel):
     def start(self, chain, seed):
         return GreyState(self.starts[chain % len(self.starts)].copy())
 
+    def _draw_scales(self, state, temperature, key):
+        """Scales | image: components into ``state.comp``; the energy of ``x`` comes with them."""
+        if state.comp is None:
+            state.comp = np.empty(self.w.shape, np.uint8)
+        state.energy = float(kernels.gsm_draw_components(
+            state.x, self.y, self.dw, self.offsets, self.logamp, self.prec, self.strength,
+            float(temperature), np.uint64(key), state.comp))
+
     def sweep(self, state, temperature, key):
-        """Scales | image (categorical draws), then image | scales (one exact Gaussian block)."""
-        kernels.gsm_draw_weights(state.x, self.offsets, self.logamp, self.prec, self.strength,
-                                 float(temperature), np.uint64(key), self.w)
+        """Image | scales (one exact Gaussian block), then scales | image (categorical draws).
+
+        The scales drawn at the end of a sweep serve the image update of the
+        next one; a fresh state first draws them from its starting image (with
+        a stream of its own).  Drawing them last gives the energy of the new
+        image from the same pass over the cliques.
+        """
+        if state.comp is None:
+            self._draw_scales(state, temperature,
+                              kernels.derive_key(np.uint64(key), kernels._GREY_START_SALT))
+        kernels.gsm_expand(state.comp, self.prec, self.strength, self.w)
         self._set_operator()
         if temperature > 0:
+            if self._pbuf is None:
+                self._pbuf = np.empty_like(self.w)
             kernels.gmrf_perturbation(self.w, self.offsets, self.dw,
-                                      np.uint64(kernels.derive_key(np.uint64(key), kernels._GREY_NOISE_SALT)),
-                                      math.sqrt(temperature), self._eta)
+                                      kernels.derive_key(np.uint64(key), kernels._GREY_NOISE_SALT),
+                                      math.sqrt(temperature), self._eta, self._pbuf)
             rhs = np.stack([self.b, self._eta])
             x0 = np.stack([state.mu, np.zeros_like(state.mu)])
             X, it = self.solve(rhs, x0, (self.tol, self.sample_tol))
@@ -445,7 +469,7 @@ class GreyModel(ChainModel):
             state.mu[...] = X[0]
             state.x[...] = X[0]
         state.iterations = it
-        state.energy = None
+        self._draw_scales(state, temperature, key)
 
     def energy(self, state):
         if state.energy is None:
@@ -471,6 +495,7 @@ class GreyModel(ChainModel):
             if done:
                 break
         state.energy = None
+        state.comp = None  # the image moved: scales are drawn afresh from it
         return k
 
     def summary(self, state):
