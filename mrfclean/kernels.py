@@ -605,7 +605,12 @@ def _gsm_clique(la, pr, lam, d2, it, lp):
             cm = c
     tot = 0.0
     for c in range(K):
-        e = np.exp(lp[c] - m)
+        v = lp[c] - m
+        # exp(-40) = 4e-18 is below half an ulp of the sum (>= 1) and below the
+        # 2**-53 resolution of the uniform that picks a component: skipping the
+        # exp there changes no draw and no energy.  Most scales of a clique are
+        # that far below its best one, so this saves most of the exps.
+        e = np.exp(v) if v > -40.0 else 0.0
         lp[c] = e
         tot += e
     return m, tot, cm
