@@ -67,9 +67,11 @@ class Settings:
         ``"auto"`` follows the voxel size, see :mod:`mrfclean.stacks`) or a
         set of planes cleaned one by one.
     tile : int or None
-        Binary: clean in square tiles of this many pixels, reading and writing
-        band by band (memory bounded by a band of tile rows plus one byte per
-        pixel of state; results identical to an untiled run; see
+        Clean in square tiles of this many pixels, reading and writing band by
+        band.  Binary: memory bounded by a band of tile rows plus one byte per
+        pixel of state, results identical to an untiled run.  Greyscale: each
+        tile sampled with a margin, memory bounded by a band of tiles, results
+        equal to an untiled run within Monte-Carlo error (see
         :mod:`mrfclean.tiles`).
     """
 

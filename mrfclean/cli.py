@@ -132,8 +132,9 @@ def add_model_options(p):
                    help="a stack of planes is one 3-D volume, z coupling from the voxel size "
                         "(default), or planes cleaned one by one")
     m.add_argument("--tile", type=_positive_int, metavar="SIZE",
-                   help="binary: clean in tiles of SIZE pixels, reading and writing uncompressed "
-                        "TIFF band by band (memory bounded; same result as untiled)")
+                   help="clean in tiles of SIZE pixels, reading and writing uncompressed TIFF band "
+                        "by band (memory bounded; binary: same result as untiled; grey: tiles "
+                        "with a margin, equal to untiled within Monte-Carlo error)")
     s = p.add_argument_group("sampler")
     s.add_argument("--schedule", choices=sorted(SCHEDULES),
                    help="annealing schedule for --estimate map (default geometric)")

@@ -47,6 +47,30 @@ class Diagnostics:
     notes: list = field(default_factory=list)
 
 
+def combine_diagnostics(parts, labels) -> Diagnostics:
+    """One :class:`Diagnostics` for an image cleaned in parts (planes of a stack, tiles).
+
+    The worst R-hat, agreement only if every part agrees, final (and exact)
+    energies summed, the most quench passes, and each part's notes prefixed
+    with its label.
+    """
+    parts = list(parts)
+    diag = Diagnostics()
+    rh = [d.rhat for d in parts if np.isfinite(d.rhat)]
+    diag.rhat = float(max(rh)) if rh else float("nan")
+    agree = [d.chains_agree for d in parts if d.chains_agree is not None]
+    diag.chains_agree = all(agree) if agree else None
+    diag.final_energy = float(sum(d.final_energy for d in parts))
+    diag.quench_passes = int(max((d.quench_passes for d in parts), default=0))
+    for label, d in zip(labels, parts):
+        diag.notes.extend(f"{label}: {n}" for n in d.notes)
+    if parts and all(d.exact_energy is not None for d in parts):
+        diag.exact_energy = float(sum(d.exact_energy for d in parts))
+        diag.energy_gap = float((diag.final_energy - diag.exact_energy)
+                                / max(abs(diag.exact_energy), 1e-300))
+    return diag
+
+
 @dataclass
 class CleanResult:
     """What every cleaner returns.

@@ -8,6 +8,7 @@ map (temperature-1 chains) or annealed MAP → the input's dtype out.
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 from scipy import ndimage, special
@@ -190,9 +191,58 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
     grid = Grid.for_image(a)
     seed = to_seed(rng)
     y = lv.to_work(a).astype(np.float64).reshape(grid.shape)
-    estimated = []
+    setup = grey_setup(y, noise=noise, sigma=sigma, gain=gain, read_variance=read_variance,
+                       strength=strength, prior=prior, seed=seed, tol=tol)
+    block = sample_block(y, setup, method=method, schedule=schedule, sweeps=sweeps,
+                         burn_in=burn_in, samples=samples, chains=chains, tol=tol, seed=seed,
+                         progress=progress)
+    params = {"method": method, "chains": int(chains), "seed": seed, **setup.describe(),
+              **block.params, "level": float(level)}
+    mean = (setup.low + setup.span * block.mean_u).astype(np.float32).reshape(a.shape)
+    std = (setup.span * block.std_u).astype(np.float32).reshape(a.shape)
+    estimate = lv.from_work(setup.low + setup.span * block.est_u, a.dtype).reshape(a.shape)
+    return CleanResult(estimate=estimate, mean=mean, std=std, energy=block.energy,
+                       temperatures=block.temperatures, params=params,
+                       diagnostics=block.diagnostics, kind="grey", method=method)
 
-    # --- noise -------------------------------------------------------------------
+
+@dataclass
+class GreySetup:
+    """What a greyscale posterior needs besides the pixels: given or estimated once.
+
+    Tiles of one image share it, so that every tile has the same model.
+    ``low`` and ``span`` map intensities to the prior's units, ``u = (y - low) / span``.
+    """
+
+    noise: str
+    term: object  # GaussianNoise or PoissonGaussianNoise
+    low: float
+    span: float
+    prior: GSMPrior  # with its strength
+    estimated: list
+    extra: dict  # SURE table, noise curve: recorded with the result
+
+    def observed(self, y):
+        """``(u, var_u)``: a block of physical intensities in the prior's units, and its noise variance."""
+        var_phys = self.term.variance(_smooth(y))
+        return (y - self.low) / self.span, var_phys / self.span**2
+
+    def describe(self):
+        return {**self.term.describe(), **self.prior.describe(), "intensity_low": self.low,
+                "intensity_span": self.span, "estimated": list(self.estimated), **self.extra}
+
+
+def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="auto",
+               strength="auto", prior=None, seed=0, tol=DEFAULT_TOL) -> GreySetup:
+    """Noise model, intensity frame and prior strength for the image ``y`` (float64, (Z, H, W)).
+
+    Everything left ``"auto"`` is estimated from ``y`` as :func:`clean_grey`
+    describes; the names of those parameters are listed in ``estimated``.
+    """
+    if noise not in NOISES:
+        raise ValueError(f"noise must be one of {NOISES}, got {noise!r}")
+    estimated = []
+    extra = {}
     curve = None
     if noise == "auto":
         if gain != "auto" or read_variance != "auto":
@@ -219,6 +269,8 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
         if s <= 0:
             s = 1e-3 * max(float(np.ptp(y)), 1e-12)  # noise-free input: a token level
         term = GaussianNoise(float(s))
+        if curve is not None:
+            extra["noise_curve"] = {"a": curve.a, "b": curve.b}
     else:
         if gain == "auto" or read_variance == "auto":
             curve = curve or estimate_poisson_gaussian(y)
@@ -229,42 +281,49 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
         if ga == 0 and rb == 0:
             rb = (1e-3 * max(float(np.ptp(y)), 1e-12)) ** 2
         term = PoissonGaussianNoise(float(ga), float(rb))
-    pilot = _smooth(y)
-    var_phys = term.variance(pilot)
-
-    # --- internal intensity frame --------------------------------------------------
+    var_phys = term.variance(_smooth(y))
     low, span = intensity_frame(y, float(np.sqrt(np.mean(var_phys))))
-    u = (y - low) / span
-    var_u = var_phys / span**2
-
-    # --- prior and its strength ----------------------------------------------------
     if prior is None:
         base = GSMPrior.load()
     elif isinstance(prior, GSMPrior):
         base = prior
     else:
         base = GSMPrior.load(prior)
-    sure_table = None
     if strength == "auto":
-        fit = choose_strength(u, var_u, base, seed=seed ^ 0x3C3C3C3C, tol=tol)
+        fit = choose_strength((y - low) / span, var_phys / span**2, base, seed=seed ^ 0x3C3C3C3C,
+                              tol=tol)
         lam = fit.strength
-        sure_table = fit.table
+        extra["sure"] = fit.table
         estimated.append("strength")
     else:
         lam = _number("strength", strength, positive=False)
-    model_prior = base.with_strength(lam)
-    model = GreyModel(u, variance=var_u, prior=model_prior, starts=[_smooth(u, w) for w in START_WIDTHS],
-                      tol=tol, sample_tol=max(tol, DEFAULT_SAMPLE_TOL), grid=grid)
+    return GreySetup(noise, term, low, span, base.with_strength(lam), estimated, extra)
 
+
+@dataclass
+class Block:
+    """The posterior of one block (a whole image or a tile) in the prior's units."""
+
+    est_u: np.ndarray
+    mean_u: np.ndarray
+    std_u: np.ndarray
+    energy: np.ndarray
+    temperatures: np.ndarray
+    diagnostics: Diagnostics
+    params: dict
+
+
+def sample_block(y, setup: GreySetup, *, method="mean", schedule=None, sweeps=None, burn_in=None,
+                 samples=None, chains=DEFAULT_CHAINS, tol=DEFAULT_TOL, seed=0,
+                 progress=False) -> Block:
+    """Posterior mean and std (and the annealed MAP for ``method="map"``) of ``y`` under ``setup``."""
+    u, var_u = setup.observed(y)
+    grid = Grid.for_image(u)
+    model = GreyModel(u, variance=var_u, prior=setup.prior,
+                      starts=[_smooth(u, w) for w in START_WIDTHS],
+                      tol=tol, sample_tol=max(tol, DEFAULT_SAMPLE_TOL), grid=grid)
     diag = Diagnostics()
-    params = {"method": method, "chains": int(chains), "seed": seed, **term.describe(),
-              **model.describe(), "intensity_low": low, "intensity_span": span,
-              "level": float(level), "estimated": estimated}
-    if sure_table is not None:
-        params["sure"] = sure_table
-    if noise == "gaussian" and curve is not None:
-        params["noise_curve"] = {"a": curve.a, "b": curve.b}
-    mean_u = std_u = None
+    params = dict(model.describe())
     burn_in = int(DEFAULT_BURN_IN if burn_in is None else burn_in)
     samples = int(samples or DEFAULT_SAMPLES)
     if method == "map":
@@ -290,8 +349,4 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
     params["cg_iterations_per_solve"] = round(st.iterations / max(st.solves, 1), 2)
     if st.worst_residual > 10 * tol:
         diag.notes.append(f"conjugate gradients stopped at relative residual {st.worst_residual:.2g}")
-    mean = (low + span * mean_u).astype(np.float32).reshape(a.shape)
-    std = (span * std_u).astype(np.float32).reshape(a.shape)
-    estimate = lv.from_work(low + span * est_u, a.dtype).reshape(a.shape)
-    return CleanResult(estimate=estimate, mean=mean, std=std, energy=energy, temperatures=temps,
-                       params=params, diagnostics=diag, kind="grey", method=method)
+    return Block(est_u, mean_u, std_u, energy, temps, diag, params)

@@ -43,7 +43,7 @@ import math
 import numpy as np
 
 from . import levels as lv
-from .estimates import CleanResult, Diagnostics
+from .estimates import CleanResult, combine_diagnostics
 
 STACK_MODES = ("volume", "planes")
 
@@ -194,19 +194,8 @@ def clean_planes(image, clean_one, *, rng=None) -> CleanResult:
 def combine_planes(results, estimate, mean, std) -> CleanResult:
     """One :class:`CleanResult` for a stack from the results of its planes (see :func:`clean_planes`)."""
     first = results[0]
-    diag = Diagnostics()
-    rh = [r.diagnostics.rhat for r in results if np.isfinite(r.diagnostics.rhat)]
-    diag.rhat = float(max(rh)) if rh else float("nan")
-    agree = [r.diagnostics.chains_agree for r in results if r.diagnostics.chains_agree is not None]
-    diag.chains_agree = all(agree) if agree else None
-    diag.final_energy = float(sum(r.diagnostics.final_energy for r in results))
-    diag.quench_passes = int(max(r.diagnostics.quench_passes for r in results))
-    for z, r in enumerate(results):
-        diag.notes.extend(f"plane {z}: {n}" for n in r.diagnostics.notes)
-    if all(r.diagnostics.exact_energy is not None for r in results):
-        diag.exact_energy = float(sum(r.diagnostics.exact_energy for r in results))
-        diag.energy_gap = float((diag.final_energy - diag.exact_energy)
-                                / max(abs(diag.exact_energy), 1e-300))
+    diag = combine_diagnostics([r.diagnostics for r in results],
+                               [f"plane {z}" for z in range(len(results))])
     shapes = {r.energy.shape for r in results}
     energy = sum(r.energy for r in results) if len(shapes) == 1 else first.energy
     params = dict(first.params)
