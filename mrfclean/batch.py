@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import csv
 import dataclasses
+import functools
 import glob
 import hashlib
 import io as _io
@@ -318,9 +319,10 @@ def exception_line(exc) -> str:
     return f"{type(exc).__name__}: {_one_line(exc)}"
 
 
-def clean_task(task: Task) -> dict:
+def clean_task(task: Task, tile_executor=None) -> dict:
     """Clean one image and say what happened; never raises for a problem with the image.
 
+    ``tile_executor``: where the tiles of a tiled greyscale image run.
     Returns a JSON-ready dict with ``status`` ``"done"`` or ``"failed"``.
     """
     t0 = time.perf_counter()
@@ -333,7 +335,8 @@ def clean_task(task: Task) -> dict:
             warnings.simplefilter("ignore", ChainsDisagree)  # recorded in the diagnostics
             outcome = clean_file(task.path, outdir, settings=task.settings, rng=task.seed,
                                  maps=task.maps, colour=task.colour, overwrite=task.overwrite,
-                                 max_pixels=task.max_pixels, progress=task.progress)
+                                 max_pixels=task.max_pixels, progress=task.progress,
+                                 tile_executor=tile_executor)
     except io.InputError as exc:
         return {**base, "status": "failed", "error": exc.message,
                 "seconds": time.perf_counter() - t0}
@@ -605,7 +608,16 @@ def _run_locked(inputs, collected, outroot, summary, settings, options, executor
         manifest.append(plan[i][3])
 
     own_executor = executor is None
-    if executor is None:
+    task_fn = clean_task
+    tile_executor = None
+    if executor is None and len(plan) == 1 and settings.tile is not None:
+        # one tiled image: it is read and written here, its (greyscale) tiles share the workers
+        tile_executor = make_executor(options.workers, options.threads,
+                                      scheduler=options.scheduler,
+                                      local_cluster=options.local_cluster)
+        task_fn = functools.partial(clean_task, tile_executor=tile_executor)
+        executor = InProcess()
+    elif executor is None:
         # no more local workers than images: a single image runs here, on every core
         workers = min(options.workers or cpu_count(), max(1, len(plan)))
         executor = make_executor(workers, options.threads, scheduler=options.scheduler,
@@ -621,7 +633,7 @@ def _run_locked(inputs, collected, outroot, summary, settings, options, executor
                           desc="images", unit="img") as bar:
             bar.update(len(settled))
             try:
-                for i, value in executor.run(clean_task, [p[1] for p in plan], on_start=on_start):
+                for i, value in executor.run(task_fn, [p[1] for p in plan], on_start=on_start):
                     item, task, key, started = plan[i]
                     if isinstance(value, BaseException):
                         value = {"status": "failed", "error": exception_line(value)}
@@ -646,6 +658,8 @@ def _run_locked(inputs, collected, outroot, summary, settings, options, executor
     finally:
         if own_executor:
             executor.close()
+        if tile_executor is not None:
+            tile_executor.close()
 
     for item in collected.items:
         e = settled.get(item.relpath)

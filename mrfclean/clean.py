@@ -227,7 +227,7 @@ def check_targets(path, targets, *, overwrite=False):
 
 def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps=None,
                colour=None, overwrite=False, max_pixels=io.DEFAULT_MAX_PIXELS,
-               progress=False, output=None) -> FileOutcome:
+               progress=False, output=None, tile_executor=None) -> FileOutcome:
     """Read ``path``, clean it, write the result into ``outdir`` (never over the input).
 
     Parameters
@@ -239,6 +239,9 @@ def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps
         Conversion of colour images (see :func:`mrfclean.io.read_image`).
     output : path, optional
         Exact output file instead of ``outdir / name``.
+    tile_executor : optional
+        Where the tiles of a tiled greyscale image run (see
+        :func:`mrfclean.tiles.clean_grey_tiled`); default here.
 
     Raises
     ------
@@ -252,7 +255,7 @@ def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps
 
         return clean_file_tiled(path, outdir, settings=settings, rng=rng, maps=maps, colour=colour,
                                 overwrite=overwrite, max_pixels=max_pixels, progress=progress,
-                                output=output)
+                                output=output, tile_executor=tile_executor)
     loaded = io.read_image(path, colour=colour, max_pixels=max_pixels)
     kind = choose_kind(loaded.array, settings.kind)
     out, map_paths = output_paths(path, outdir, kind=kind)

@@ -134,7 +134,8 @@ def add_model_options(p):
     m.add_argument("--tile", type=_positive_int, metavar="SIZE",
                    help="clean in tiles of SIZE pixels, reading and writing uncompressed TIFF band "
                         "by band (memory bounded; binary: same result as untiled; grey: tiles "
-                        "with a margin, equal to untiled within Monte-Carlo error)")
+                        "with a margin, equal to untiled within Monte-Carlo error; the tiles of a single "
+                        "grey image run on the workers)")
     s = p.add_argument_group("sampler")
     s.add_argument("--schedule", choices=sorted(SCHEDULES),
                    help="annealing schedule for --estimate map (default geometric)")

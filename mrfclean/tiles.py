@@ -50,6 +50,7 @@ from __future__ import annotations
 
 import math
 import time
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -60,6 +61,7 @@ from .estimates import (CleanResult, Diagnostics, anneal, combine_diagnostics,
 from .binary import FIT_SALT, POSTERIOR_SALT
 from .lattice import Grid
 from .models.binary import bernoulli_std, on_fraction
+from .pool import InProcess
 from .sampler import START_SWEEP, ChainModel, Tally, to_seed
 
 #: Smallest tile side accepted.
@@ -665,11 +667,39 @@ def _band_energy_of(model, spins, b0, b1, above):
 DEFAULT_GREY_HALO = 24
 
 
+@dataclass
+class GreyTile:
+    """One greyscale tile as a task: its pixels with their margin, and all it needs to be sampled."""
+
+    raw: np.ndarray  # (Z, h, w) in the input's dtype
+    keep: tuple  # (r0, r1, c0, c1) of the tile inside ``raw``
+    setup: object  # mrfclean.grey.GreySetup
+    options: dict  # method, schedule, sweeps, burn_in, samples, chains
+    seed: int
+    label: str
+
+
+def sample_grey_tile(task: GreyTile):
+    """Sample one tile (runs in this process or in a worker); the tile's part of the result.
+
+    Returns ``(estimate_u, mean_u, std_u, energy, temperatures, diagnostics, params)``
+    with the three images cut to the tile (margin dropped), in the prior's units.
+    """
+    from .grey import sample_block
+
+    y = lv.to_work(task.raw).astype(np.float64)
+    blk = sample_block(y, task.setup, seed=task.seed, **task.options)
+    r0, r1, c0, c1 = task.keep
+    cut = (slice(None), slice(r0, r1), slice(c0, c1))
+    return (blk.est_u[cut], blk.mean_u[cut], blk.std_u[cut], blk.energy, blk.temperatures,
+            blk.diagnostics, blk.params)
+
+
 def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method="mean",
                      noise="auto", sigma="auto", gain="auto", read_variance="auto",
                      strength="auto", prior=None, schedule=None, sweeps=None, burn_in=None,
                      samples=None, chains=None, fit_window=DEFAULT_FIT_WINDOW, out=None,
-                     maps=None, rng=None, progress=False) -> CleanResult:
+                     maps=None, executor=None, rng=None, progress=False) -> CleanResult:
     """Clean a greyscale image or stack tile by tile, with memory bounded by a band of tiles.
 
     Unknown parameters (noise model, intensity frame, prior strength by SURE)
@@ -700,6 +730,10 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
     maps : dict, optional
         ``{"std": target}`` (and optionally ``"mean"``) written band by band;
         default: new float32 arrays.
+    executor : optional
+        Where the tiles of a band run (:mod:`mrfclean.pool`: a local pool, or
+        :class:`mrfclean.cluster.DaskExecutor`); default here, one after
+        another.  The result is the same bit for bit wherever they run.
     rng : int or numpy.random.Generator, optional
     progress : bool
         One bar over the tiles.
@@ -720,7 +754,7 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
     >>> bool(np.abs(res.estimate - clean).mean() < np.abs(noisy - clean).mean() / 2)
     True
     """
-    from .grey import DEFAULT_CHAINS, DEFAULT_TOL, METHODS, grey_setup, sample_block
+    from .grey import DEFAULT_CHAINS, DEFAULT_TOL, METHODS, grey_setup
     from .progress import progress_bar
 
     if method not in METHODS:
@@ -754,32 +788,40 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
     energy = temps = None
     first = None
     iterations = []
+    options = dict(method=method, schedule=schedule, sweeps=sweeps, burn_in=burn_in,
+                   samples=samples, chains=chains)
+    executor = executor or InProcess()
     with progress_bar(total=len(bands) * len(cols), enabled=progress, desc="tiles") as bar:
         for r0, r1 in bands:
             band = {"est": np.empty((Z, r1 - r0, W), dtype)}
             band.update({k: np.empty((Z, r1 - r0, W), np.float32) for k in maps})
             e0, e1 = max(0, r0 - halo), min(H, r1 + halo)
+            tasks = []
             for c0, c1 in cols:
                 f0, f1 = max(0, c0 - halo), min(W, c1 + halo)
-                y = lv.to_work(rows.window(e0, e1, f0, f1)).astype(np.float64)
-                tile_seed = to_seed(np.random.default_rng([seed, r0, c0]))
-                blk = sample_block(y, setup, method=method, schedule=schedule, sweeps=sweeps,
-                                   burn_in=burn_in, samples=samples, chains=chains,
-                                   seed=tile_seed)
-                keep = (slice(None), slice(r0 - e0, r1 - e0), slice(c0 - f0, c1 - f0))
-                band["est"][:, :, c0:c1] = lv.from_work(setup.low + setup.span * blk.est_u[keep],
-                                                        dtype)
-                if "std" in band:
-                    band["std"][:, :, c0:c1] = setup.span * blk.std_u[keep]
-                if "mean" in band:
-                    band["mean"][:, :, c0:c1] = setup.low + setup.span * blk.mean_u[keep]
-                parts.append(blk.diagnostics)
-                labels.append(f"tile at row {r0}, column {c0}")
-                energy = blk.energy.copy() if energy is None else energy + blk.energy
-                temps = blk.temperatures if temps is None else temps
-                first = first or blk.params
-                iterations.append(blk.params["cg_iterations_per_solve"])
+                tasks.append(GreyTile(rows.window(e0, e1, f0, f1),
+                                      (r0 - e0, r1 - e0, c0 - f0, c1 - f0), setup, options,
+                                      to_seed(np.random.default_rng([seed, r0, c0])),
+                                      f"tile at row {r0}, column {c0}"))
+            done = {}
+            for k, value in executor.run(sample_grey_tile, tasks):
+                if isinstance(value, BaseException):
+                    raise ValueError(f"{tasks[k].label}: {type(value).__name__}: {value}")
+                done[k] = value
                 bar.update()
+            for k, (c0, c1) in enumerate(cols):  # in column order: sums do not depend on timing
+                est_u, mean_u, std_u, e, t, d, prm = done[k]
+                band["est"][:, :, c0:c1] = lv.from_work(setup.low + setup.span * est_u, dtype)
+                if "std" in band:
+                    band["std"][:, :, c0:c1] = setup.span * std_u
+                if "mean" in band:
+                    band["mean"][:, :, c0:c1] = setup.low + setup.span * mean_u
+                parts.append(d)
+                labels.append(tasks[k].label)
+                energy = e.copy() if energy is None else energy + e
+                temps = t if temps is None else temps
+                first = first or prm
+                iterations.append(prm["cg_iterations_per_solve"])
             _put(est, rows.flat, r0, r1, band["est"])
             for k, target in maps.items():
                 _put(target, rows.flat, r0, r1, band[k])
@@ -794,7 +836,7 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
 
 
 def clean_tiled(image, *, settings, voxel_size=None, rng=None, progress=False, out=None,
-                maps=None) -> CleanResult:
+                maps=None, executor=None) -> CleanResult:
     """:func:`clean_binary_tiled` or :func:`clean_grey_tiled` driven by a :class:`mrfclean.clean.Settings`."""
     from .schedules import make_schedule
 
@@ -805,7 +847,7 @@ def clean_tiled(image, *, settings, voxel_size=None, rng=None, progress=False, o
             noise=s.noise, sigma=s.sigma, gain=s.gain, read_variance=s.read_variance,
             strength=s.strength, schedule=make_schedule(s.schedule, start=s.t_start, end=s.t_end),
             sweeps=s.sweeps, burn_in=s.burn_in, samples=s.samples, chains=s.chains, out=out,
-            maps=maps, rng=rng, progress=progress)
+            maps=maps, executor=executor, rng=rng, progress=progress)
     if s.boundary != "free":
         raise ValueError("tiled cleaning needs a free boundary")
     if s.certify:
@@ -838,7 +880,8 @@ class _Plane:
 
 
 def clean_file_tiled(path, outdir, *, settings, rng=None, maps=None, colour=None,
-                     overwrite=False, max_pixels=None, progress=False, output=None):
+                     overwrite=False, max_pixels=None, progress=False, output=None,
+                     tile_executor=None):
     """:func:`mrfclean.clean.clean_file` for ``settings.tile``: bounded memory from file to file.
 
     An uncompressed TIFF is read one band of rows at a time and the result
@@ -895,12 +938,13 @@ def clean_file_tiled(path, outdir, *, settings, rng=None, maps=None, colour=None
                 gen = np.random.default_rng(rng)
                 results = [clean_tiled(_Plane(src, z), settings=s, rng=gen, progress=progress,
                                        out=_Plane(est, z),
-                                       maps={k: _Plane(v, z) for k, v in targets.items()})
+                                       maps={k: _Plane(v, z) for k, v in targets.items()},
+                                       executor=tile_executor)
                            for z in range(shape[0])]
                 result = combine_planes(results, est, targets.get("p_on"), targets.get("std"))
             else:
                 result = clean_tiled(src, settings=s, voxel_size=voxel, rng=rng, progress=progress,
-                                     out=est, maps=targets)
+                                     out=est, maps=targets, executor=tile_executor)
             if loaded.format != "tiff":
                 io.write_image(out, est, fmt=loaded.format, metadata=loaded.metadata,
                                overwrite=overwrite)

@@ -146,3 +146,18 @@ def test_cli_scheduler_and_local_cluster(tmp_path, client, capsys):
     assert len(here) == 3 and _pngs(tmp_path / "sched") == here and _pngs(tmp_path / "lc") == here
     assert main(["clean", str(tmp_path / "in"), "-o", str(tmp_path / "x"), "--scheduler", "tcp://a:1",
                  "--local-cluster", "2"]) == 2
+
+
+def test_dask_runs_the_tiles_of_one_grey_image(client):
+    """The tiles of one tiled greyscale image sent to the cluster come back with the bytes of
+    tiles cleaned here (each tile's streams depend only on the seed and its position)."""
+    from mrfclean.cluster import DaskExecutor
+    from mrfclean.tiles import clean_grey_tiled
+
+    gen = np.random.default_rng(3)
+    y = (np.linspace(0, 100, 96)[None, :] * np.ones((96, 1)) + gen.normal(0, 10, (96, 96)))
+    kw = dict(sigma=10.0, strength=1.0, burn_in=1, samples=2, chains=1, tile=48, rng=2)
+    here = clean_grey_tiled(y.astype(np.float32), **kw)
+    there = clean_grey_tiled(y.astype(np.float32), executor=DaskExecutor(client=client), **kw)
+    assert np.array_equal(here.estimate, there.estimate) and np.array_equal(here.std, there.std)
+    assert there.params["tiles"] == 4
