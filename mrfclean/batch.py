@@ -610,13 +610,14 @@ def _run_locked(inputs, collected, outroot, summary, settings, options, executor
     own_executor = executor is None
     task_fn = clean_task
     tile_executor = None
-    if executor is None and len(plan) == 1 and settings.tile is not None:
-        # one tiled image: it is read and written here, its (greyscale) tiles share the workers
+    if executor is None and len(plan) == 1 and settings.tile is not None and settings.kind != "binary":
+        # one tiled image: read and written here; greyscale tiles share the workers (binary
+        # tiles are swept in order, so a binary image leaves the pool unused -- it starts lazily)
         tile_executor = make_executor(options.workers, options.threads,
                                       scheduler=options.scheduler,
                                       local_cluster=options.local_cluster)
         task_fn = functools.partial(clean_task, tile_executor=tile_executor)
-        executor = InProcess()
+        executor = InProcess(threads=options.threads)
     elif executor is None:
         # no more local workers than images: a single image runs here, on every core
         workers = min(options.workers or cpu_count(), max(1, len(plan)))

@@ -53,14 +53,14 @@ def _smooth(u, s=1.5):
     return ndimage.gaussian_filter(u, (0.0, s, s), mode="reflect")
 
 
-def intensity_frame(y, sigma):
+def intensity_frame(y, sigma, *, smooth=None):
     """``(low, span)`` that map the image to roughly [0, 1] for the prior.
 
-    Robust extremes (0.5 and 99.5 percentiles) of a lightly smoothed image, so
-    that noise does not widen the span; the span is at least ``sigma`` and
-    never zero.
+    Robust extremes (0.5 and 99.5 percentiles) of a lightly smoothed image
+    (``smooth``, computed when not given), so that noise does not widen the
+    span; the span is at least ``sigma`` and never zero.
     """
-    s = _smooth(y)
+    s = _smooth(y) if smooth is None else smooth
     lo, hi = np.percentile(s, [0.5, 99.5])
     span = float(hi - lo)
     span = max(span, float(sigma), 1e-12 * max(abs(float(lo)), 1.0), 1e-30)
@@ -125,8 +125,9 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
         fitted from the image (after Foi et al. 2008).
     strength : float or "auto"
         Multiplier of the learned prior's precisions; ``"auto"``: the minimiser
-        of Stein's unbiased risk estimate (Stein 1981) over a grid, from short
-        posterior runs on crops.
+        of Stein's unbiased risk estimate (Stein 1981), found by a walk over
+        strengths in factors of 2 from short posterior runs on crops (see
+        :func:`mrfclean.fit.grey.choose_strength`).
     prior : GSMPrior or path, optional
         Default: the prior shipped in ``mrfclean/data/grey_prior.json``.
     schedule : Schedule, optional
@@ -211,38 +212,58 @@ class GreySetup:
     """What a greyscale posterior needs besides the pixels: given or estimated once.
 
     Tiles of one image share it, so that every tile has the same model.
-    ``low`` and ``span`` map intensities to the prior's units, ``u = (y - low) / span``.
+    ``low`` and ``span`` map intensities to the prior's units, ``u = (y - low) / span``;
+    ``sure_table`` and ``noise_curve`` record how the strength and noise were
+    chosen (None when given).
     """
 
-    noise: str
     term: object  # GaussianNoise or PoissonGaussianNoise
     low: float
     span: float
     prior: GSMPrior  # with its strength
     estimated: list
-    extra: dict  # SURE table, noise curve: recorded with the result
+    sure_table: list | None = None
+    noise_curve: dict | None = None
 
-    def observed(self, y):
-        """``(u, var_u)``: a block of physical intensities in the prior's units, and its noise variance."""
-        var_phys = self.term.variance(_smooth(y))
+    def observed(self, y, smooth=None):
+        """``(u, var_u)``: a block of physical intensities in the prior's units and its noise
+        variance (evaluated at ``smooth``, default the block lightly smoothed)."""
+        var_phys = self.term.variance(_smooth(y) if smooth is None else smooth)
         return (y - self.low) / self.span, var_phys / self.span**2
 
     def describe(self):
-        return {**self.term.describe(), **self.prior.describe(), "intensity_low": self.low,
-                "intensity_span": self.span, "estimated": list(self.estimated), **self.extra}
+        """JSON-ready parameters: noise, prior, intensity frame, what was estimated and how."""
+        d = {**self.term.describe(), **self.prior.describe(), "intensity_low": self.low,
+             "intensity_span": self.span, "estimated": list(self.estimated)}
+        if self.sure_table is not None:
+            d["sure"] = self.sure_table
+        if self.noise_curve is not None:
+            d["noise_curve"] = self.noise_curve
+        return d
 
 
 def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="auto",
                strength="auto", prior=None, seed=0, tol=DEFAULT_TOL) -> GreySetup:
-    """Noise model, intensity frame and prior strength for the image ``y`` (float64, (Z, H, W)).
+    """Noise model, intensity frame and prior strength for an image, given or estimated.
 
-    Everything left ``"auto"`` is estimated from ``y`` as :func:`clean_grey`
-    describes; the names of those parameters are listed in ``estimated``.
+    Parameters
+    ----------
+    y : ndarray, shape (Z, H, W)
+        Physical intensities (float64).
+    noise, sigma, gain, read_variance, strength, prior, tol
+        As for :func:`clean_grey`; everything left ``"auto"`` is estimated
+        from ``y`` and named in ``estimated``.
+    seed : int
+        Kernel seed (the strength runs use a stream derived from it).
+
+    Returns
+    -------
+    GreySetup
     """
     if noise not in NOISES:
         raise ValueError(f"noise must be one of {NOISES}, got {noise!r}")
     estimated = []
-    extra = {}
+    noise_curve = None
     curve = None
     if noise == "auto":
         if gain != "auto" or read_variance != "auto":
@@ -270,7 +291,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
             s = 1e-3 * max(float(np.ptp(y)), 1e-12)  # noise-free input: a token level
         term = GaussianNoise(float(s))
         if curve is not None:
-            extra["noise_curve"] = {"a": curve.a, "b": curve.b}
+            noise_curve = {"a": curve.a, "b": curve.b}
     else:
         if gain == "auto" or read_variance == "auto":
             curve = curve or estimate_poisson_gaussian(y)
@@ -281,23 +302,25 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         if ga == 0 and rb == 0:
             rb = (1e-3 * max(float(np.ptp(y)), 1e-12)) ** 2
         term = PoissonGaussianNoise(float(ga), float(rb))
-    var_phys = term.variance(_smooth(y))
-    low, span = intensity_frame(y, float(np.sqrt(np.mean(var_phys))))
+    pilot = _smooth(y)
+    low, span = intensity_frame(y, float(np.sqrt(np.mean(term.variance(pilot)))), smooth=pilot)
     if prior is None:
         base = GSMPrior.load()
     elif isinstance(prior, GSMPrior):
         base = prior
     else:
         base = GSMPrior.load(prior)
+    setup = GreySetup(term, low, span, base, estimated, None, noise_curve)
     if strength == "auto":
-        fit = choose_strength((y - low) / span, var_phys / span**2, base, seed=seed ^ 0x3C3C3C3C,
-                              tol=tol)
+        u, var_u = setup.observed(y, pilot)
+        fit = choose_strength(u, var_u, base, seed=seed ^ 0x3C3C3C3C, tol=tol)
         lam = fit.strength
-        extra["sure"] = fit.table
+        setup.sure_table = fit.table
         estimated.append("strength")
     else:
         lam = _number("strength", strength, positive=False)
-    return GreySetup(noise, term, low, span, base.with_strength(lam), estimated, extra)
+    setup.prior = base.with_strength(lam)
+    return setup
 
 
 @dataclass
@@ -316,7 +339,24 @@ class Block:
 def sample_block(y, setup: GreySetup, *, method="mean", schedule=None, sweeps=None, burn_in=None,
                  samples=None, chains=DEFAULT_CHAINS, tol=DEFAULT_TOL, seed=0,
                  progress=False) -> Block:
-    """Posterior mean and std (and the annealed MAP for ``method="map"``) of ``y`` under ``setup``."""
+    """Posterior mean and std (and the annealed MAP for ``method="map"``) of ``y`` under ``setup``.
+
+    Parameters
+    ----------
+    y : ndarray, shape (Z, H, W)
+        Physical intensities (float64): a whole image or a tile with its margin.
+    setup : GreySetup
+    method, schedule, sweeps, burn_in, samples, chains, tol, progress
+        As for :func:`clean_grey`.
+    seed : int
+        Kernel seed of this block.
+
+    Returns
+    -------
+    Block
+        Images in the prior's units, energy trace, diagnostics and the
+        sampler's parameters.
+    """
     u, var_u = setup.observed(y)
     grid = Grid.for_image(u)
     model = GreyModel(u, variance=var_u, prior=setup.prior,

@@ -691,8 +691,8 @@ def sample_grey_tile(task: GreyTile):
     blk = sample_block(y, task.setup, seed=task.seed, **task.options)
     r0, r1, c0, c1 = task.keep
     cut = (slice(None), slice(r0, r1), slice(c0, c1))
-    return (blk.est_u[cut], blk.mean_u[cut], blk.std_u[cut], blk.energy, blk.temperatures,
-            blk.diagnostics, blk.params)
+    return (blk.est_u[cut].copy(), blk.mean_u[cut].copy(), blk.std_u[cut].copy(), blk.energy,
+            blk.temperatures, blk.diagnostics, blk.params)
 
 
 def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method="mean",
@@ -725,6 +725,7 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
     method, noise, sigma, gain, read_variance, strength, prior, schedule, sweeps, burn_in, samples, chains
         As for :func:`mrfclean.grey.clean_grey`.
     fit_window : int
+        Side of the central window on which parameters left ``"auto"`` are estimated.
     out : array-like, optional
         Where the estimate goes, one band of rows at a time; default a new array.
     maps : dict, optional
@@ -742,8 +743,10 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
     -------
     CleanResult
         ``energy`` is the sum over tiles of each tile's energy trace (margins
-        included), ``params`` records ``tile``, ``halo``, ``tiles`` and
-        ``fit_window``.
+        included; a trend, not the energy of the image), and
+        ``diagnostics.final_energy`` is NaN for the same reason; ``params``
+        records ``tile``, ``halo``, ``tiles`` and ``fit_window`` (the central
+        window ``[i0, i1, j0, j1]`` the parameters were estimated on).
 
     Examples
     --------
@@ -754,11 +757,15 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
     >>> bool(np.abs(res.estimate - clean).mean() < np.abs(noisy - clean).mean() / 2)
     True
     """
-    from .grey import DEFAULT_CHAINS, DEFAULT_TOL, METHODS, grey_setup
+    from .grey import DEFAULT_CHAINS, DEFAULT_LEVEL, DEFAULT_TOL, METHODS, grey_setup
     from .progress import progress_bar
 
     if method not in METHODS:
         raise ValueError(f"method must be one of {METHODS}, got {method!r}")
+    if int(tile) < MIN_TILE:
+        raise ValueError(f"tile must be a whole number of at least {MIN_TILE} pixels, got {tile!r}")
+    if maps is not None and not set(maps) <= {"std", "mean"}:
+        raise ValueError(f"maps may hold 'std' and 'mean' only, got {sorted(maps)}")
     if int(halo) < 0:
         raise ValueError(f"halo must be a whole number of at least 0, got {halo!r}")
     halo = int(halo)
@@ -806,7 +813,7 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
             done = {}
             for k, value in executor.run(sample_grey_tile, tasks):
                 if isinstance(value, BaseException):
-                    raise ValueError(f"{tasks[k].label}: {type(value).__name__}: {value}")
+                    raise value  # as it was raised: an input error, out of memory, a lost worker
                 done[k] = value
                 bar.update()
             for k, (c0, c1) in enumerate(cols):  # in column order: sums do not depend on timing
@@ -826,10 +833,11 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
             for k, target in maps.items():
                 _put(target, rows.flat, r0, r1, band[k])
     diag = combine_diagnostics(parts, labels)
+    diag.final_energy = float("nan")  # tiles overlap: their energies do not add up to the image's
     params = {"method": method, "chains": chains, "seed": seed, **setup.describe(), **first,
               "cg_iterations_per_solve": round(float(np.mean(iterations)), 2),
               "tile": [int(tile), int(tile)], "halo": halo, "tiles": len(bands) * len(cols),
-              "fit_window": list(fw), "seconds": time.perf_counter() - t_start}
+              "fit_window": list(fw), "level": DEFAULT_LEVEL, "seconds": time.perf_counter() - t_start}
     return CleanResult(estimate=est, mean=maps.get("mean"), std=maps.get("std"), energy=energy,
                        temperatures=temps, params=params, diagnostics=diag, kind="grey",
                        method=method)
@@ -917,6 +925,8 @@ def clean_file_tiled(path, outdir, *, settings, rng=None, maps=None, colour=None
     check_targets(path, (out, *map_paths.values()), overwrite=overwrite)
     want_maps = (kind == "grey") if maps is None else bool(maps)
     s = settings.replace(kind=kind, uncertainty=settings.uncertainty or want_maps)
+    if str(loaded.metadata.get("axes", ""))[:1] == "C" and len(src.shape) == 3:
+        s = s.replace(stack="planes")  # channels are not neighbours in space: never couple them
     voxel = io.voxel_size(loaded.metadata)
     shape = tuple(src.shape)
     written = {}

@@ -199,9 +199,12 @@ def test_psnr_floor_on_skimage_crops(cell_camera, name, floor, cover):
 def test_sure_strength_walk_finds_the_oracle_strength_of_a_quadratic_prior():
     """With a one-scale (quadratic) prior the posterior mean is linear in y and computed
     exactly here by a sparse solve (Rue & Held 2005, ch. 2), so the true MSE of every
-    strength is known.  The strength chosen by the SURE walk must have a true MSE within
-    3% of the best over a fine geometric grid (SURE is unbiased, Stein 1981; its noise on
-    2304 pixels is a few per cent of the risk, which flattens the minimum)."""
+    strength is known.  The oracle strength (about 0.8) lies between the walk's grid points
+    0.5 and 1 (whose MSEs are 19% and 1.8% above the best), so the parabolic refinement
+    must land within 1% of the best MSE over a fine grid.  SURE is unbiased (Stein 1981);
+    its Monte-Carlo noise here (30 kept sweeps, common random numbers across strengths)
+    moves the parabola's vertex by a few per cent of the strength, which costs well under
+    1% of MSE near the flat minimum."""
     import scipy.sparse as sp
     import scipy.sparse.linalg as sla
     from mrfclean.fit.grey import choose_strength
@@ -213,7 +216,7 @@ def test_sure_strength_walk_finds_the_oracle_strength_of_a_quadratic_prior():
     x = 0.5 + 0.3 * np.sin(ii / 6.0) * np.cos(jj / 9.0)
     s = 0.1
     y = x + s * gen.standard_normal(x.shape)
-    prior = GSMPrior.quadratic(240.0, neighbourhood="4")
+    prior = GSMPrior.quadratic(300.0, neighbourhood="4")  # oracle strength between grid points
     fit = choose_strength(y, s * s, prior, seed=5, tol=1e-6, burn_in=2, samples=30)
     n = H * W
     idx = np.arange(n).reshape(H, W)
@@ -227,9 +230,9 @@ def test_sure_strength_walk_finds_the_oracle_strength_of_a_quadratic_prior():
     L = (D.T @ D).tocsc()
 
     def mse(lam):
-        Q = sp.identity(n, format="csc") / s**2 + 240.0 * lam * L
+        Q = sp.identity(n, format="csc") / s**2 + 300.0 * lam * L
         return float(np.mean((sla.spsolve(Q, y.ravel() / s**2) - x.ravel()) ** 2))
 
     best = min(mse(l) for l in 2.0 ** np.arange(-6, 4.01, 0.25))
-    assert mse(fit.strength) <= 1.03 * best
+    assert mse(fit.strength) <= 1.01 * best
     assert 3 <= len(fit.table) <= 8  # a walk, not a sweep of the whole range

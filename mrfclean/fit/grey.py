@@ -412,6 +412,11 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
         First strength and the ratio between neighbouring strengths.
     bounds : (float, float)
         The walk stops at these strengths.
+
+    Returns
+    -------
+    StrengthFit
+        The strength of least risk and every ``(strength, risk)`` tried.
     """
     from .. import sampler
     from ..models.grey import GreyModel
@@ -425,13 +430,20 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
     zs = slice((y.shape[0] - z) // 2, (y.shape[0] - z) // 2 + z)
     wins = _crop_windows(y.shape[1:], crop, crops)
 
+    if y.shape[0] == 1 and len(wins) > 1:
+        # the windows of a 2-D image side by side as planes of one lattice without z
+        # cliques: independent posteriors, sampled in one run on every thread
+        blocks = [(np.stack([y[0, si, sj] for si, sj in wins]),
+                   np.stack([v[0, si, sj] for si, sj in wins]), 0.0)]
+    else:
+        blocks = [(y[zs, si, sj], v[zs, si, sj], None) for si, sj in wins]
+
     def risk(lam):
         tot, n = 0.0, 0
-        for k, (si, sj) in enumerate(wins):
-            yc, vc = y[zs, si, sj], v[zs, si, sj]
-            start = ndimage.gaussian_filter(yc, (0.0, 1.0, 1.0))
-            m = GreyModel(yc, variance=vc, prior=prior.with_strength(float(lam)), tol=tol,
-                          sample_tol=max(tol, 1e-2), starts=[start])
+        for k, (yc, vc, sz) in enumerate(blocks):
+            x0 = ndimage.gaussian_filter(yc, (0.0, 1.0, 1.0))
+            m = GreyModel(yc, variance=vc, prior=prior.with_strength(float(lam), sz), tol=tol,
+                          sample_tol=max(tol, 1e-2), starts=[x0])
             run = sampler.run(m, sweeps=burn_in + samples, burn_in=burn_in, chains=1,
                               seed=seed + k, tally=True)
             tot += sure(yc, run.tally.mean64(), run.tally.var64(), vc) * yc.size
@@ -450,9 +462,9 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
     kmax = math.floor(math.log(bounds[1] / start, step) + 1e-9)
     k = 0
     direction = 1 if kmax > 0 and at(1) < at(0) else -1
-    while kmin < k + direction < kmax + 1 and at(k + direction) < at(k):
+    while kmin <= k + direction <= kmax and at(k + direction) < at(k):
         k += direction
-    table = [(float(start * step**j), r) for j, r in known.items()]
+    extra = []
     if refine and kmin < k < kmax:
         (l0, r0), (l1, r1), (l2, r2) = [(math.log(start * step ** (k + d)), at(k + d))
                                         for d in (-1, 0, 1)]
@@ -461,7 +473,7 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
         B = (l2 * l2 * (r0 - r1) + l1 * l1 * (r2 - r0) + l0 * l0 * (r1 - r2)) / den
         if A > 0:
             lv = min(max(-B / (2 * A), l0), l2)
-            table.append((float(math.exp(lv)), risk(math.exp(lv))))
-    table.sort()
+            extra.append((float(math.exp(lv)), risk(math.exp(lv))))
+    table = sorted([(float(start * step**j), r) for j, r in known.items()] + extra)
     best = min(table, key=lambda t: t[1])
     return StrengthFit(best[0], [[s, r] for s, r in table])

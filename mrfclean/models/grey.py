@@ -352,6 +352,13 @@ class GreyModel(ChainModel):
     max_iter : int
         Iteration cap per solve (reported in :attr:`stats`).
 
+    Notes
+    -----
+    Memory per pixel and offset ``n``: the clique weights (8 bytes), the
+    clique normals of a perturbation (8 bytes) and each chain's drawn scale
+    components (1 byte), plus ten float64 images for two conjugate-gradient
+    systems.
+
     Examples
     --------
     >>> import numpy as np
