@@ -13,9 +13,10 @@ Parts
    256², 512², 1024², 2048², with 1 thread and with every numba thread; the
    spread (max / min over sizes) should stay within 20 % (linear cost).
    Also the tiled binary sweep, to show the overhead of tiling.
-2. Peak RSS of an untiled binary clean (MPM, parameters estimated), measured
-   in a subprocess from /proc/self/status VmHWM after resetting it, compared
-   with 8x the float32 image size.
+2. Peak RSS of an untiled binary clean (MPM, parameters estimated) and of an
+   untiled greyscale clean (posterior mean and std, everything automatic),
+   measured in a subprocess from /proc/self/status VmHWM after resetting it,
+   compared with 8x the float32 image size.
 3. A 20000 x 20000 bi-level scan: written band by band as an uncompressed TIFF
    in a temporary folder (the generator stays within memory), cleaned from the
    command line with --tile in a subprocess; wall time and the child's peak
@@ -36,6 +37,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -145,51 +147,71 @@ RSS_CHILD = r"""
 import json, sys, numpy as np, warnings
 warnings.simplefilter("ignore")
 from mrfclean.binary import clean_binary
-n = int(sys.argv[1])
+from mrfclean.grey import clean_grey
+kind, n = sys.argv[1], int(sys.argv[2])
 def status(key):
     for line in open("/proc/self/status"):
         if line.startswith(key):
             return int(line.split()[1]) * 1024
-small = (np.random.default_rng(0).random((64, 64)) < 0.3).astype(np.uint8)
-clean_binary(small, rng=0, burn_in=2, samples=2)   # compile everything first
 rng = np.random.default_rng(1)
 yy, xx = np.mgrid[0:n, 0:n]
-img = ((np.sin(xx / 37.0) + np.cos(yy / 23.0)) > 0.3).astype(np.uint8) * 255
-img = np.where(rng.random((n, n)) < 0.1, 255 - img, img).astype(np.uint8)
+pattern = (np.sin(xx / 37.0) + np.cos(yy / 23.0)) > 0.3
 del yy, xx
+if kind == "binary":
+    small = (np.random.default_rng(0).random((64, 64)) < 0.3).astype(np.uint8)
+    clean_binary(small, rng=0, burn_in=2, samples=2)   # compile everything first
+    img = pattern.astype(np.uint8) * 255
+    img = np.where(rng.random((n, n)) < 0.1, 255 - img, img).astype(np.uint8)
+    run = lambda: clean_binary(img, rng=0, burn_in=5, samples=10)
+else:
+    clean_grey(np.random.default_rng(0).random((64, 64)).astype(np.float32), rng=0)
+    img = (pattern * 0.6 + 0.2 + rng.normal(0, 0.1, (n, n))).astype(np.float32)
+    run = lambda: clean_grey(img, rng=0)
+del pattern
 base = status("VmRSS")
 open("/proc/self/clear_refs", "w").write("5")   # reset VmHWM to the current RSS
-res = clean_binary(img, rng=0, burn_in=5, samples=10)
+res = run()
 peak = status("VmHWM")
 print(json.dumps({"n": n, "base": base, "peak": peak, "float32_bytes": 4 * n * n}))
 """
 
 
-def part_rss(n):
-    out = subprocess.run([sys.executable, "-c", RSS_CHILD, str(n)], capture_output=True,
+def part_rss(n, kind="binary"):
+    out = subprocess.run([sys.executable, "-c", RSS_CHILD, kind, str(n)], capture_output=True,
                          text=True, check=True)
     d = json.loads(out.stdout.strip().splitlines()[-1])
     extra = d["peak"] - d["base"]
     ratio = extra / d["float32_bytes"]
-    print(f"untiled binary MPM clean of {n}x{n} uint8: peak RSS {d['peak'] / 2**20:.0f} MiB, "
+    what = ("binary MPM clean of {n}x{n} uint8" if kind == "binary"
+            else "grey posterior mean + std of {n}x{n} float32").format(n=n)
+    print(f"untiled {what}: peak RSS {d['peak'] / 2**20:.0f} MiB, "
           f"{extra / 2**20:.0f} MiB above the {d['base'] / 2**20:.0f} MiB before cleaning = "
           f"{ratio:.1f}x the float32 image ({'within' if ratio <= 8 else 'ABOVE'} 8x)")
     return d
 
 
-def write_big_scan(path, side, *, band=1000, rate=0.1, seed=0):
-    """A bi-level scan written band by band (peak memory: a few bands)."""
+def _write_bands(path, side, dtype, band_of, *, band=1000, seed=0):
+    """A synthetic scan written band by band (peak memory: a few bands).
+
+    ``band_of(xx, yy, rng)`` gives the pixels of rows ``yy`` (a column) at columns ``xx``.
+    """
     from mrfclean import io
 
     rng = np.random.default_rng(seed)
-    with io.tiff_band_writer(path, (side, side), np.uint8, overwrite=True) as w:
+    with io.tiff_band_writer(path, (side, side), dtype, overwrite=True) as w:
         xx = np.arange(side)[None, :]
         for r0 in range(0, side, band):
-            r1 = min(r0 + band, side)
-            yy = np.arange(r0, r1)[:, None]
-            clean = ((np.sin(xx / 53.0) * np.cos(yy / 41.0) + np.sin((xx + yy) / 97.0)) > 0.2)
-            flips = rng.random((r1 - r0, side)) < rate
-            w[r0:r1] = np.where(flips ^ clean, 255, 0).astype(np.uint8)
+            w[r0:min(r0 + band, side)] = band_of(xx, np.arange(r0, min(r0 + band, side))[:, None], rng)
+
+
+def write_big_scan(path, side, *, rate=0.1):
+    """A bi-level scan: a smooth pattern thresholded, with a fraction ``rate`` of pixels flipped."""
+    def band_of(xx, yy, rng):
+        clean = ((np.sin(xx / 53.0) * np.cos(yy / 41.0) + np.sin((xx + yy) / 97.0)) > 0.2)
+        flips = rng.random((yy.shape[0], xx.shape[1])) < rate
+        return np.where(flips ^ clean, 255, 0).astype(np.uint8)
+
+    _write_bands(path, side, np.uint8, band_of)
 
 
 def part_big(side, tile, sweeps, keep):
@@ -218,25 +240,18 @@ def part_big(side, tile, sweeps, keep):
           f"{wall:.0f} s wall, peak RSS {peak / 2**30:.2f} GiB "
           f"({'within' if peak <= 2 * 2**30 else 'ABOVE'} 2 GB); output written: {ok}")
     if not keep:
-        for p in sorted(tmp.rglob("*"), reverse=True):
-            p.unlink() if p.is_file() else p.rmdir()
-        tmp.rmdir()
+        shutil.rmtree(tmp)
     return wall, peak
 
 
-def write_big_grey_scan(path, side, *, band=1000, seed=0):
-    """A 16-bit greyscale scan (smooth specimen plus Gaussian noise) written band by band."""
-    from mrfclean import io
+def write_big_grey_scan(path, side):
+    """A 16-bit greyscale scan: a smooth specimen plus Gaussian noise (sd 3000 counts)."""
+    def band_of(xx, yy, rng):
+        clean = 20000 + 15000 * np.tanh(4 * (np.sin(xx / 53.0) * np.cos(yy / 41.0)))
+        noisy = clean + rng.normal(0, 3000, (yy.shape[0], xx.shape[1]))
+        return np.clip(np.rint(noisy), 0, 65535).astype(np.uint16)
 
-    rng = np.random.default_rng(seed)
-    with io.tiff_band_writer(path, (side, side), np.uint16, overwrite=True) as w:
-        xx = np.arange(side)[None, :]
-        for r0 in range(0, side, band):
-            r1 = min(r0 + band, side)
-            yy = np.arange(r0, r1)[:, None]
-            clean = 20000 + 15000 * np.tanh(4 * (np.sin(xx / 53.0) * np.cos(yy / 41.0)))
-            noisy = clean + rng.normal(0, 3000, (r1 - r0, side))
-            w[r0:r1] = np.clip(np.rint(noisy), 0, 65535).astype(np.uint16)
+    _write_bands(path, side, np.uint16, band_of)
 
 
 def _tree_rss(pid):
@@ -295,9 +310,7 @@ def part_big_grey(side, tile, workers, keep):
           f"{workers} workers: {wall:.0f} s wall ({wall / mpx:.2f} s per megapixel), peak RSS "
           f"(process tree) {peak[0] / 2**30:.2f} GiB; image + std map written: {ok}")
     if not keep:
-        for p in sorted(tmp.rglob("*"), reverse=True):
-            p.unlink() if p.is_file() else p.rmdir()
-        tmp.rmdir()
+        shutil.rmtree(tmp)
     return wall, peak[0]
 
 
@@ -307,6 +320,7 @@ def main(argv=None):
     p.add_argument("--skip-rss", action="store_true")
     p.add_argument("--skip-big", action="store_true")
     p.add_argument("--rss-side", type=int, default=4096)
+    p.add_argument("--rss-grey-side", type=int, default=2048)
     p.add_argument("--big-side", type=int, default=20000)
     p.add_argument("--big-tile", type=int, default=1024)
     p.add_argument("--big-sweeps", type=int, default=20)
@@ -323,6 +337,7 @@ def main(argv=None):
         part_cost(threads)
     if not args.skip_rss:
         part_rss(args.rss_side)
+        part_rss(args.rss_grey_side, "grey")
     if not args.skip_big:
         part_big(args.big_side, args.big_tile, args.big_sweeps, args.keep)
     if not args.skip_big_grey:
