@@ -589,6 +589,9 @@ NO_CLIQUE = 255
 _GSM_DRAW = 0
 _GSM_MEAN = 1
 _GSM_ENERGY = 2
+#: Placeholders for the output array a mode of :func:`_gsm_rows` does not write.
+_EMPTY4 = np.zeros((0, 0, 0, 0))
+_EMPTY4U = np.zeros((0, 0, 0, 0), np.uint8)
 
 
 @njit(inline="always", cache=True)
@@ -715,10 +718,6 @@ def gsm_draw_components(x, y, dw, offsets, logamp, prec, strength, temperature, 
     _gsm_rows(x, y, dw, offsets, logamp, prec, strength, float(temperature), np.uint64(key),
               _GSM_DRAW, _EMPTY4, comp, rows)
     return _ordered_sum(rows)
-
-
-_EMPTY4 = np.zeros((0, 0, 0, 0))
-_EMPTY4U = np.zeros((0, 0, 0, 0), np.uint8)
 
 
 @njit(cache=True)
