@@ -94,6 +94,16 @@ def _number(name, v, *, positive=True):
     return f
 
 
+def check_options(shape, *, method, chains):
+    """Refuse a method, chain count or image size the greyscale cleaner cannot use."""
+    if method not in METHODS:
+        raise ValueError(f"method must be one of {METHODS}, got {method!r}")
+    if int(chains) < 1:
+        raise ValueError(f"chains must be at least 1, got {chains}")
+    if min(shape[-2:]) < 8:
+        raise ValueError(f"image too small for the greyscale cleaner: {tuple(shape)}")
+
+
 def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
                read_variance="auto", strength="auto", prior: GSMPrior | str | None = None,
                schedule: Schedule | None = None, sweeps=None, burn_in=None, samples=None,
@@ -173,22 +183,15 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
     >>> bool(np.abs(res.estimate - clean).mean() < np.abs(noisy - clean).mean() / 2)
     True
     """
-    if method not in METHODS:
-        raise ValueError(f"method must be one of {METHODS}, got {method!r}")
-    if noise not in NOISES:
-        raise ValueError(f"noise must be one of {NOISES}, got {noise!r}")
     a = np.asarray(image)
     lv.check_dtype(a.dtype)
     if a.ndim not in (2, 3) or a.size == 0:
         raise ValueError(f"expected a non-empty 2-D image or 3-D stack, got shape {a.shape}")
+    check_options(a.shape, method=method, chains=chains)
     if a.dtype.kind == "f" and not np.all(np.isfinite(a)):
         raise ValueError("image contains NaN or infinite values")
-    if min(a.shape[-2:]) < 8:
-        raise ValueError(f"image too small for the greyscale cleaner: {a.shape}")
     if not 0 < float(level) < 1:
         raise ValueError(f"level must be in (0, 1), got {level!r}")
-    if int(chains) < 1:
-        raise ValueError(f"chains must be at least 1, got {chains}")
     grid = Grid.for_image(a)
     seed = to_seed(rng)
     y = lv.to_work(a).astype(np.float64).reshape(grid.shape)

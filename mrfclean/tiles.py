@@ -757,11 +757,9 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
     >>> bool(np.abs(res.estimate - clean).mean() < np.abs(noisy - clean).mean() / 2)
     True
     """
-    from .grey import DEFAULT_CHAINS, DEFAULT_LEVEL, DEFAULT_TOL, METHODS, grey_setup
+    from .grey import DEFAULT_CHAINS, DEFAULT_LEVEL, DEFAULT_TOL, check_options, grey_setup
     from .progress import progress_bar
 
-    if method not in METHODS:
-        raise ValueError(f"method must be one of {METHODS}, got {method!r}")
     if int(tile) < MIN_TILE:
         raise ValueError(f"tile must be a whole number of at least {MIN_TILE} pixels, got {tile!r}")
     if maps is not None and not set(maps) <= {"std", "mean"}:
@@ -770,14 +768,11 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
         raise ValueError(f"halo must be a whole number of at least 0, got {halo!r}")
     halo = int(halo)
     chains = DEFAULT_CHAINS if chains is None else int(chains)
-    if chains < 1:
-        raise ValueError(f"chains must be at least 1, got {chains}")
     t_start = time.perf_counter()
     rows = image if isinstance(image, VolumeRows) else VolumeRows(image)
     dtype = lv.check_dtype(rows.dtype)
     Z, H, W = rows.shape
-    if min(H, W) < 8:
-        raise ValueError(f"image too small for the greyscale cleaner: {rows.shape}")
+    check_options(rows.shape, method=method, chains=chains)
     scan_levels(rows)  # NaN / infinity check, band by band
     seed = to_seed(rng)
     fw = _fit_window(rows, fit_window)
