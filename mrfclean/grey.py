@@ -179,7 +179,7 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
     >>> import numpy as np
     >>> clean = np.zeros((48, 48)); clean[:, 24:] = 100.0
     >>> noisy = clean + np.random.default_rng(0).normal(0, 10, clean.shape)
-    >>> res = clean_grey(noisy.astype(np.float32), rng=1)
+    >>> res = clean_grey(noisy.astype(np.float32), chains=1, rng=1)
     >>> bool(np.abs(res.estimate - clean).mean() < np.abs(noisy - clean).mean() / 2)
     True
     """

@@ -110,7 +110,9 @@ def band_bounds(height, size):
     Examples
     --------
     >>> band_bounds(10, 4)
-    [(0, 4), (4, 10)]
+    [(0, 4), (4, 8), (8, 10)]
+    >>> band_bounds(9, 4)  # no one-row band at the end
+    [(0, 4), (4, 9)]
     """
     size = max(int(size), 2)
     cuts = list(range(0, height, size)) + [height]
@@ -753,7 +755,7 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
     >>> import numpy as np
     >>> clean = np.zeros((64, 64)); clean[:, 32:] = 100.0
     >>> noisy = (clean + np.random.default_rng(0).normal(0, 10, clean.shape)).astype(np.float32)
-    >>> res = clean_grey_tiled(noisy, tile=32, rng=1)
+    >>> res = clean_grey_tiled(noisy, tile=32, chains=1, rng=1)
     >>> bool(np.abs(res.estimate - clean).mean() < np.abs(noisy - clean).mean() / 2)
     True
     """
