@@ -207,6 +207,8 @@ def test_sure_strength_walk_finds_the_oracle_strength_of_a_quadratic_prior():
     1% of MSE near the flat minimum."""
     import scipy.sparse as sp
     import scipy.sparse.linalg as sla
+    from test_grey_gmrf import difference_matrices  # the sparse D_o of the GMRF tests
+
     from mrfclean.fit.grey import choose_strength
     from mrfclean.models.grey import GSMPrior
 
@@ -219,15 +221,7 @@ def test_sure_strength_walk_finds_the_oracle_strength_of_a_quadratic_prior():
     prior = GSMPrior.quadratic(300.0, neighbourhood="4")  # oracle strength between grid points
     fit = choose_strength(y, s * s, prior, seed=5, tol=1e-6, burn_in=2, samples=30)
     n = H * W
-    idx = np.arange(n).reshape(H, W)
-    pairs = [(idx[:, :-1].ravel(), idx[:, 1:].ravel()), (idx[:-1].ravel(), idx[1:].ravel())]
-    rows = np.concatenate([np.arange(p.size) + sum(q[0].size for q in pairs[:k])
-                           for k, (p, _) in enumerate(pairs)])
-    D = sp.csr_matrix((np.r_[np.ones(rows.size), -np.ones(rows.size)],
-                       (np.r_[rows, rows], np.r_[np.concatenate([b for _, b in pairs]),
-                                                 np.concatenate([a for a, _ in pairs])])),
-                      shape=(rows.size, n))
-    L = (D.T @ D).tocsc()
+    L = sum(D.T @ D for _, D in difference_matrices((1, H, W), [(0, 0, 1), (0, 1, 0)])).tocsc()
 
     def mse(lam):
         Q = sp.identity(n, format="csc") / s**2 + 300.0 * lam * L
