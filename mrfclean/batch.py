@@ -295,6 +295,9 @@ class Task:
     reference: str | None
     data_range: float | None
     progress: bool = False
+    #: None of the outputs existed when the run planned this task, so any found
+    #: later were written during this run (see :func:`_same_as_earlier_attempt`).
+    fresh: bool = False
 
 
 def _trace(energy, temperatures, points=TRACE_POINTS):
@@ -319,6 +322,38 @@ def exception_line(exc) -> str:
     return f"{type(exc).__name__}: {_one_line(exc)}"
 
 
+def _same_as_earlier_attempt(task: Task, outdir: Path, run):
+    """Outputs of a task that an earlier attempt in this run wrote before its worker died.
+
+    A task is retried when its worker process dies, and the worker may have
+    died after writing the outputs but before its result came back.  The
+    retry cleans again into a scratch folder beside them.  The same seed gives
+    the same bytes, so if every output already there is byte-identical to the
+    retry's, the outputs are this task's own and the outcome points at them.
+    Outputs the earlier attempt had not written yet are moved into place
+    without replacing anything.  If any existing file differs, it is not this
+    task's and nothing is touched (returns None; the caller reports the
+    clash).
+    """
+    import shutil
+    import tempfile
+
+    scratch = Path(tempfile.mkdtemp(prefix=".retry-", dir=outdir))
+    try:
+        again = run(scratch)
+        made = {"image": again.output, **again.maps}
+        if any((outdir / p.name).exists() and (outdir / p.name).read_bytes() != p.read_bytes()
+               for p in made.values()):
+            return None
+        for p in made.values():
+            if not (outdir / p.name).exists():
+                os.link(p, outdir / p.name)  # never replaces: fails if the name was taken
+        return dataclasses.replace(again, output=outdir / again.output.name,
+                                   maps={k: outdir / Path(v).name for k, v in again.maps.items()})
+    finally:
+        shutil.rmtree(scratch, ignore_errors=True)
+
+
 def clean_task(task: Task, tile_executor=None) -> dict:
     """Clean one image and say what happened; never raises for a problem with the image.
 
@@ -330,13 +365,21 @@ def clean_task(task: Task, tile_executor=None) -> dict:
     rel = PurePosixPath(task.relpath)
     outdir = outroot.joinpath(*rel.parts[:-1])
     base = {"worker": f"{socket.gethostname()}:{os.getpid()}"}
-    try:
+    def run(target_dir):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ChainsDisagree)  # recorded in the diagnostics
-            outcome = clean_file(task.path, outdir, settings=task.settings, rng=task.seed,
-                                 maps=task.maps, colour=task.colour, overwrite=task.overwrite,
-                                 max_pixels=task.max_pixels, progress=task.progress,
-                                 tile_executor=tile_executor)
+            return clean_file(task.path, target_dir, settings=task.settings, rng=task.seed,
+                              maps=task.maps, colour=task.colour, overwrite=task.overwrite,
+                              max_pixels=task.max_pixels, progress=task.progress,
+                              tile_executor=tile_executor)
+
+    try:
+        try:
+            outcome = run(outdir)
+        except io.OutputExists:
+            outcome = _same_as_earlier_attempt(task, outdir, run) if task.fresh else None
+            if outcome is None:
+                raise
     except io.InputError as exc:
         return {**base, "status": "failed", "error": exc.message,
                 "seconds": time.perf_counter() - t0}
@@ -600,8 +643,7 @@ def _run_locked(inputs, collected, outroot, summary, settings, options, executor
         # rewritten bit-identically: replace them without asking.
         replace = options.overwrite or bool(existing) and all(
             index.may_replace(rel, key) for rel in existing)
-        if replace != task.overwrite:
-            task = dataclasses.replace(task, overwrite=replace)
+        task = dataclasses.replace(task, overwrite=replace, fresh=not existing)
         plan.append((item, task, key, {**common, "status": "started", "outputs": candidates}))
 
     def on_start(i):

@@ -222,7 +222,7 @@ def check_targets(path, targets, *, overwrite=False):
         if io.same_file(target, path):
             raise io.InputError(path, f"output {target} would overwrite the input; choose another folder")
         if Path(target).exists() and not overwrite:
-            raise io.InputError(path, f"output {target} already exists; choose another folder or allow overwriting")
+            raise io.OutputExists(path, f"output {target} already exists; choose another folder or allow overwriting")
 
 
 def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps=None,

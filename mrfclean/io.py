@@ -41,6 +41,10 @@ class InputError(Exception):
         super().__init__(f"{self.path}: {self.message}")
 
 
+class OutputExists(InputError):
+    """An output of this input is already on disk and replacing it was not allowed."""
+
+
 @dataclass
 class Loaded:
     """An image read from disk.

@@ -315,3 +315,35 @@ def test_second_batch_into_the_same_folder_is_refused(tmp_path, capsys):
     t0 = time.monotonic()
     assert main(["clean", str(tmp_path / "in"), "-o", str(tmp_path / "out"), *FAST_FLAGS]) == 0
     assert time.monotonic() - t0 < 60 and (tmp_path / "out" / "a.png").is_file()
+
+
+def test_retried_task_accepts_its_own_earlier_outputs_and_nothing_else(tmp_path):
+    """A worker can die after writing an image's outputs but before its result comes back;
+    the retried task must then report the image done (its outputs are byte-identical to what
+    the retry makes with the same seed), never overwrite a different file, and fill in an
+    output the dead attempt had not written yet."""
+    import dataclasses
+
+    from mrfclean.batch import Task, clean_task
+
+    _tree(tmp_path / "in", ["a.png"])
+    out = tmp_path / "out"
+    task = Task(str(tmp_path / "in" / "a.png"), "a.png", str(out), FAST, 7, True, None,
+                10**8, False, None, None, fresh=True)
+    first = clean_task(task)
+    assert first["status"] == "done"
+    snapshot = {p.name: p.read_bytes() for p in out.iterdir()}
+    again = clean_task(task)  # the retry: outputs already there, written by "itself"
+    assert again["status"] == "done" and again["output_hashes"] == first["output_hashes"]
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == snapshot  # no scratch left
+    (out / "a_std.tif").unlink()  # the dead attempt got no further than the image
+    assert clean_task(task)["status"] == "done"
+    assert (out / "a_std.tif").read_bytes() == snapshot["a_std.tif"]
+    # a different file under the same name is not this task's: refused, left as it was
+    (out / "a.png").write_bytes(b"somebody else's result")
+    clash = clean_task(task)
+    assert clash["status"] == "failed" and "already exists" in clash["error"]
+    assert (out / "a.png").read_bytes() == b"somebody else's result"
+    # without the run's word that the outputs were absent when it planned, no retry logic
+    (out / "a.png").write_bytes(snapshot["a.png"])
+    assert clean_task(dataclasses.replace(task, fresh=False))["status"] == "failed"
