@@ -613,6 +613,12 @@ _GSM_ENERGY = 2
 #: Placeholders for the output array a mode of :func:`_gsm_rows` does not write.
 _EMPTY4 = np.zeros((0, 0, 0, 0))
 _EMPTY4U = np.zeros((0, 0, 0, 0), np.uint8)
+_EMPTY2 = np.zeros((0, 0))
+#: The ladder path takes a clique's sum only above this (a smaller one, or a
+#: running product leaving [_PROD_LO, _PROD_HI], goes the general way / is logged).
+_LADDER_TINY = 1e-100
+_PROD_LO = 1e-150
+_PROD_HI = 1e150
 
 
 @njit(inline="always", cache=True)
@@ -640,8 +646,54 @@ def _gsm_clique(la, pr, lam, d2, it, lp):
     return m, tot, cm
 
 
+@njit(inline="always", cache=True)
+def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp):
+    """Draw at T = 1 of the cliques ``(j, j + dj)``, ``j`` in ``range(lo, hi)``, on the 4^c ladder.
+
+    Returns their prior energy (scales summed out).  A clique whose sum is
+    below :data:`_LADDER_TINY` (all scales far in the tail) takes the general
+    path of :func:`_gsm_clique`.
+    """
+    K = am.shape[0]
+    lmax = la[0]
+    for c in range(K):
+        lmax = max(lmax, la[c])
+    g = -0.5 * lam * pr[0]
+    prod = 1.0
+    acc = 0.0
+    for j in range(lo, hi):
+        d = nrow[j + dj] - xrow[j]
+        d2 = d * d
+        e = np.exp(g * d2)
+        tot = 0.0
+        for c in range(K):
+            v = am[c] * e
+            lp[c] = v
+            tot += v
+            e = e * e
+            e = e * e
+        if tot > _LADDER_TINY:
+            prod *= tot
+            if not (_PROD_LO <= prod <= _PROD_HI):
+                acc -= np.log(prod)
+                prod = 1.0
+            acc -= lmax
+        else:
+            m, tot, c = _gsm_clique(la, pr, lam, d2, 1.0, lp)
+            acc -= m + np.log(tot)
+        u = uniform(key, base + j) * tot
+        c = 0
+        a = lp[0]
+        while a <= u and c < K - 1:
+            c += 1
+            a += lp[c]
+        crow[j] = c
+    return acc - np.log(prod)
+
+
 @njit(parallel=True, cache=True)
-def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode, w, comp, rows):
+def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode, w, comp, rows,
+              amp=_EMPTY2):
     """Shared body of :func:`gsm_draw_components`, :func:`gsm_mean_weights` and the energy.
 
     Rows of the lattice are independent: row ``(z, i)`` owns the cliques whose
@@ -649,6 +701,13 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
     in ``rows``, the row's energy (prior at T = 1 with the scales summed out,
     plus data term) of ``x``.  ``mode`` mean: posterior-mean weights into ``w``.
     ``mode`` energy: only the prior energy.
+
+    ``amp`` (draw at T = 1 only, empty otherwise): ``exp(logamp - max logamp)``
+    per offset, given when the precisions form the ladder ``prec[c] = prec[0]
+    4^c`` (see :func:`ladder4`).  Then ``exp(-lam prec[c] d^2 / 2)`` is
+    ``e^(4^c)`` with ``e = exp(-lam prec[0] d^2 / 2)``: one exp and two
+    squarings per scale instead of an exp per scale, and the logs of the
+    clique sums are taken on their running product.
     """
     Z, H, W = x.shape
     n = offsets.shape[0]
@@ -656,6 +715,7 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
     N = Z * H * W
     it = 1.0 / temperature if temperature > 0.0 else 1.0
     draw = mode == _GSM_DRAW
+    fast = draw and temperature == 1.0 and amp.shape[0] == n
     for k in prange(Z * H):
         z = k // H
         i = k - z * H
@@ -694,6 +754,9 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
             la = logamp[o]
             pr = prec[o]
             base = o * N + (z * H + i) * W
+            if fast:
+                acc += _ladder_draw(xrow, nrow, dj, lo, hi, amp[o], la, pr, lam, key, base, crow, lp)
+                continue
             for j in range(lo, hi):
                 d = nrow[j + dj] - xrow[j]
                 d2 = d * d
@@ -736,9 +799,24 @@ def gsm_draw_components(x, y, dw, offsets, logamp, prec, strength, temperature, 
     from the same logits, so a sweep needs no separate energy pass.
     """
     rows = np.empty(x.shape[0] * x.shape[1])
+    amp = _EMPTY2
+    if float(temperature) == 1.0 and ladder4(prec):
+        amp = np.exp(logamp - logamp.max(axis=1, keepdims=True))
     _gsm_rows(x, y, dw, offsets, logamp, prec, strength, float(temperature), np.uint64(key),
-              _GSM_DRAW, _EMPTY4, comp, rows)
+              _GSM_DRAW, _EMPTY4, comp, rows, amp)
     return _ordered_sum(rows)
+
+
+def ladder4(prec):
+    """True when every row of ``prec`` is exactly ``prec[o, 0] * 4**c`` (``c = 0 .. K-1``).
+
+    Multiplying by a power of 4 is exact in binary floating point, so the
+    test is an equality; priors on this ladder get the one-exp draw of
+    :func:`gsm_draw_components`.
+    """
+    prec = np.asarray(prec, dtype=np.float64)
+    K = prec.shape[-1]
+    return bool(np.all(prec == prec[..., :1] * 4.0 ** np.arange(K)))
 
 
 @njit(cache=True)

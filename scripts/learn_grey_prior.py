@@ -6,7 +6,7 @@ are never used here.
 
 Example
 -------
-    python scripts/learn_grey_prior.py --neighbourhood 20 --out mrfclean/data/grey_prior.json
+    python scripts/learn_grey_prior.py --out mrfclean/data/grey_prior.json
 """
 
 from __future__ import annotations
@@ -48,14 +48,16 @@ def training_images(names=TRAINING, *, crop=256, seed=0):
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0],
                                 epilog="example: python scripts/learn_grey_prior.py --neighbourhood 8")
-    p.add_argument("--neighbourhood", default="20", choices=["4", "8", "12", "20"])
-    p.add_argument("--crop", type=int, default=256)
+    p.add_argument("--neighbourhood", default="8", choices=["4", "8", "12", "20"])
+    p.add_argument("--crop", type=int, default=160)
     p.add_argument("--iterations", type=int, default=300)
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--smoothing", type=float, default=0.01,
                    help="std of Gaussian noise added before score matching (default 0.01)")
-    p.add_argument("--downsample", type=int, default=1, help="block-average training images by this")
-    p.add_argument("--pmax", type=float, default=4.5, help="log10 of the largest precision")
+    p.add_argument("--downsample", type=int, default=2, help="block-average training images by this")
+    p.add_argument("--ratio", type=float, default=4.0,
+                   help="ratio of neighbouring precisions, from 10**0.5 up (default 4: the "
+                        "ladder the sampler draws with one exp per clique)")
     p.add_argument("--scales", type=int, default=8, help="number of mixture scales")
     p.add_argument("--out", default="-")
     args = p.parse_args(argv)
@@ -65,7 +67,7 @@ def main(argv=None) -> int:
         imgs = [x[:x.shape[0] // f * f, :x.shape[1] // f * f]
                 .reshape(x.shape[0] // f, f, x.shape[1] // f, f).mean(axis=(1, 3)) for x in imgs]
     t0 = time.perf_counter()
-    prec = 10 ** np.linspace(0.5, args.pmax, args.scales)
+    prec = 10 ** 0.5 * args.ratio ** np.arange(args.scales)
     prior = learn_prior(imgs, neighbourhood=args.neighbourhood, iterations=args.iterations,
                         seed=args.seed, precisions=prec, smoothing=args.smoothing)
     d = prior.to_dict()

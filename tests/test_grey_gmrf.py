@@ -170,14 +170,20 @@ def _energy_reference(model, x):
     return float(e)
 
 
-@pytest.mark.parametrize("temperature", [1.0, 0.3])
-def test_energy_from_the_scale_draw_equals_direct_energy(temperature):
+@pytest.mark.parametrize("temperature,spread", [(1.0, 1.0), (0.3, 1.0), (1.0, 40.0)])
+def test_energy_from_the_scale_draw_equals_direct_energy(temperature, spread):
     """The energy a sweep gets from its scale-draw pass (at T = 1 and while annealing, when the
-    draw itself is tempered) equals the energy written out here with scipy's logsumexp."""
+    draw itself is tempered) equals the energy written out here with scipy's logsumexp.
+
+    The shipped prior's precisions are on the 4^c ladder, so at T = 1 the draw takes its
+    one-exp path; with ``spread`` 40 many clique sums fall below that path's floor and go
+    the general way, so both paths and their mixing within a row are checked.
+    """
     gen = np.random.default_rng(12)
-    y = gen.normal(size=(2, 21, 19))
+    y = spread * gen.normal(size=(2, 21, 19))
     m = GreyModel(y, variance=gen.uniform(0.2, 1.0, y.shape),
                   prior=GSMPrior.load().with_strength(1.3, 0.7))
+    assert kernels.ladder4(m.prec)
     st = m.start(0, 1)
     for k in range(2):
         m.sweep(st, temperature, int(kernels.stream_key(4, 0, k)))
