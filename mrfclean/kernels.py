@@ -42,6 +42,8 @@ References
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from numba import float64, int64, njit, prange, uint64
 
@@ -448,7 +450,6 @@ def count_mismatch(P, T, W, q):
 
 _GREY_NOISE_SALT = np.uint64(0x6A09E667F3BCC909)
 _GREY_START_SALT = np.uint64(0xBB67AE8584CAA73B)
-_TWO_PI = 6.283185307179586
 
 
 @njit(cache=True)
@@ -457,39 +458,108 @@ def derive_key(key, salt):
     return mix64(uint64(key) ^ mix64(uint64(salt)))
 
 
-@njit(inline="always", cache=True)
-def _polar(key, q):
-    """Radius and angle of Box-Muller pair ``q``: uniforms ``2 q`` and ``2 q + 1``."""
-    u1 = 1.0 - uniform(key, 2 * q)  # in (0, 1]: the logarithm stays finite
-    u2 = uniform(key, 2 * q + 1)
-    return np.sqrt(-2.0 * np.log(u1)), _TWO_PI * u2
+def ziggurat_tables(layers=256):
+    """Layer edges ``x[0..layers]`` and ratios ``x[i+1] / x[i]`` of the normal ziggurat.
+
+    ``f(x) = exp(-x^2 / 2)``; layer ``i >= 1`` is the box ``[0, x[i]] x
+    [f(x[i]), f(x[i+1])]``, the base layer is ``[0, r] x [0, f(r)]`` plus the
+    tail beyond ``r = x[1]``, and all have the same area ``v``; ``x[0] = v / f(r)``
+    and ``x[layers] = 0`` (Marsaglia & Tsang 2000; Doornik 2005).  ``r`` is
+    found here by bisection so that the top layer closes at 0.
+    """
+    def top(r):
+        v = r * math.exp(-0.5 * r * r) + math.sqrt(math.pi / 2) * math.erfc(r / math.sqrt(2))
+        x = r
+        for _ in range(layers - 2):
+            a = math.exp(-0.5 * x * x) + v / x
+            if a >= 1.0:
+                return 1.0, v, None  # closed too early: r too small
+            x = math.sqrt(-2.0 * math.log(a))
+        return math.exp(-0.5 * x * x) + v / x - 1.0, v, x
+
+    lo, hi = 2.0, 5.0
+    for _ in range(200):
+        mid = 0.5 * (lo + hi)
+        if top(mid)[0] > 0.0:
+            lo = mid
+        else:
+            hi = mid
+    r = hi
+    _, v, _ = top(r)
+    x = np.empty(layers + 1)
+    x[0] = v / math.exp(-0.5 * r * r)
+    x[1] = r
+    for i in range(1, layers - 1):
+        x[i + 1] = math.sqrt(-2.0 * math.log(math.exp(-0.5 * x[i] ** 2) + v / x[i]))
+    x[layers] = 0.0
+    return x, x[1:] / x[:-1]
+
+
+_ZIG_X, _ZIG_RATIO = ziggurat_tables(256)
+_ZIG_F = np.exp(-0.5 * _ZIG_X**2)
+_ZIG_SALT = np.uint64(0x3C6EF372FE94F82B)
+_U8 = np.uint64(0xFF)
+
+
+@njit(cache=True)
+def _ziggurat_slow(key, counter, i, u):
+    """The rare rest of :func:`normal`: wedge and tail tests, then fresh tries.
+
+    Its uniforms come from a SplitMix64 sequence of the counter's own
+    (``state += gamma; mix64(state)``), seeded from ``key`` and ``counter``.
+    """
+    st = mix64((key ^ _ZIG_SALT) + uint64(counter) * _M2)
+    r = _ZIG_X[1]
+    while True:
+        if i == 0:  # tail beyond r (Marsaglia 1964)
+            while True:
+                st += _GAMMA
+                a = -np.log(1.0 - float64(mix64(st) >> _S11) * _TWO53_INV) / r
+                st += _GAMMA
+                b = -np.log(1.0 - float64(mix64(st) >> _S11) * _TWO53_INV)
+                if 2.0 * b > a * a:
+                    return r + a if u >= 0.0 else -(r + a)
+        xx = u * _ZIG_X[i]
+        st += _GAMMA
+        t = float64(mix64(st) >> _S11) * _TWO53_INV
+        fx = np.exp(-0.5 * xx * xx)
+        if _ZIG_F[i] + t * (_ZIG_F[i + 1] - _ZIG_F[i]) < fx:
+            return xx
+        st += _GAMMA
+        h = mix64(st)
+        i = int64(h & _U8)
+        u = 2.0 * float64(h >> _S11) * _TWO53_INV - 1.0
+        if abs(u) < _ZIG_RATIO[i]:
+            return u * _ZIG_X[i]
 
 
 @njit(inline="always", cache=True)
 def normal(key, counter):
-    """Standard normal variate for ``counter`` of stream ``key`` (Box-Muller).
+    """Standard normal variate for ``counter`` of stream ``key`` (256-layer ziggurat).
 
-    Counters ``2 q`` and ``2 q + 1`` are the cosine and sine branches of one
-    Box-Muller pair (two independent normals from uniforms ``2 q`` and
-    ``2 q + 1``); :func:`fill_normals` makes both from one pair of uniforms.
+    One hash gives the layer (low 8 bits) and a signed uniform (top 53 bits);
+    about 99% of variates are then one multiply.  The rest go through
+    :func:`_ziggurat_slow`.
+
+    References
+    ----------
+    .. [1] G. Marsaglia and W. W. Tsang, "The ziggurat method for generating
+       random variables", J. Statistical Software 5(8), 2000.
+    .. [2] J. A. Doornik, "An improved ziggurat method to generate normal
+       random samples", University of Oxford, 2005.
     """
-    r, t = _polar(key, counter >> 1)
-    return r * (np.cos(t) if (counter & 1) == 0 else np.sin(t))
+    h = mix64(key + uint64(counter) * _GAMMA)
+    i = int64(h & _U8)
+    u = 2.0 * float64(h >> _S11) * _TWO53_INV - 1.0
+    if abs(u) < _ZIG_RATIO[i]:
+        return u * _ZIG_X[i]
+    return _ziggurat_slow(key, counter, i, u)
 
 
 @njit(inline="always", cache=True)
 def fill_normals(key, start, out, lo, hi):
-    """``out[j] = normal(key, start + j)`` for ``lo <= j < hi``, one logarithm per pair."""
-    j = lo
-    if j < hi and (start + j) & 1:
-        out[j] = normal(key, start + j)
-        j += 1
-    while j + 1 < hi:
-        r, t = _polar(key, (start + j) >> 1)
-        out[j] = r * np.cos(t)
-        out[j + 1] = r * np.sin(t)
-        j += 2
-    if j < hi:
+    """``out[j] = normal(key, start + j)`` for ``lo <= j < hi``."""
+    for j in range(lo, hi):
         out[j] = normal(key, start + j)
 
 
