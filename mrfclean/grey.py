@@ -15,7 +15,7 @@ from scipy import ndimage, special
 
 from . import levels as lv
 from .estimates import CleanResult, Diagnostics, anneal, record_posterior, sample_posterior
-from .fit.grey import choose_strength, estimate_poisson_gaussian, estimate_sigma
+from .fit.grey import FLATTEST_SHARE, choose_strength, estimate_poisson_gaussian, estimate_sigma
 from .lattice import Grid
 from .models.grey import GaussianNoise, GreyModel, GSMPrior, PoissonGaussianNoise
 from .sampler import to_seed
@@ -129,7 +129,8 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
         signal-dependent variance, else Gaussian.
     sigma : float or "auto"
         Gaussian noise standard deviation (image units); ``"auto"``: wavelet MAD
-        (Donoho & Johnstone 1994).
+        (Donoho & Johnstone 1994) over the flattest half of the image (see
+        :func:`mrfclean.fit.grey.estimate_sigma`).
     gain, read_variance : float or "auto"
         ``a`` and ``b`` of ``Var(y | x) = a x + b`` (image units); ``"auto"``:
         fitted from the image (after Foi et al. 2008).
@@ -286,7 +287,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
             estimated.append("noise")
     if noise == "gaussian":
         if sigma == "auto":
-            s = estimate_sigma(y)
+            s = estimate_sigma(y, flattest=FLATTEST_SHARE)
             estimated.append("sigma")
         else:
             s = _number("sigma", sigma)

@@ -74,7 +74,16 @@ def diagonal_detail(plane):
     return both
 
 
-def estimate_sigma(image) -> float:
+#: Share of wavelet coefficients the cleaner's noise estimate keeps (the flattest
+#: ones).  Chosen on the prior's training images (scripts/learn_grey_prior.py,
+#: never the benchmark's): at sigma 0.02-0.2 it brought the mean |log2(estimate
+#: / sigma)| from 0.138 to 0.108 there, with no bias on pure noise (measured).
+FLATTEST_SHARE = 0.5
+#: Width (pixels) of the Gaussian smoothing before the gradient that ranks flatness.
+FLATNESS_SMOOTHING = 2.0
+
+
+def estimate_sigma(image, *, flattest=1.0) -> float:
     r"""Standard deviation of additive white Gaussian noise, by wavelet MAD.
 
     .. math:: \hat\sigma = \operatorname{median}(|w_{HH}|) / 0.6745
@@ -85,6 +94,14 @@ def estimate_sigma(image) -> float:
     Parameters
     ----------
     image : array_like, shape (H, W) or (Z, H, W)
+    flattest : float in (0, 1]
+        Keep only this share of each plane's coefficients: those where the
+        gradient magnitude (Sobel) of the plane smoothed by a Gaussian of
+        :data:`FLATNESS_SMOOTHING` pixels is smallest.  Edges and texture leak
+        into the diagonal band and make the plain MAD read high at low noise;
+        leaving them out is the edge exclusion of [2]_, here applied to the
+        wavelet estimator.  1 (default): every coefficient, as
+        ``skimage.restoration.estimate_sigma``.
 
     Returns
     -------
@@ -94,15 +111,29 @@ def estimate_sigma(image) -> float:
     References
     ----------
     .. [1] D. L. Donoho and I. M. Johnstone, Biometrika 81 (1994) 425-455.
+    .. [2] S.-C. Tai and S.-M. Yang, "A fast method for image noise estimation
+       using Laplacian operator and adaptive edge detection", ISCCSP 2008.
 
     Examples
     --------
     >>> import numpy as np
     >>> y = np.random.default_rng(0).normal(0.5, 0.1, (256, 256))
-    >>> round(estimate_sigma(y), 2)
-    0.1
+    >>> round(estimate_sigma(y), 2), round(estimate_sigma(y, flattest=0.5), 2)
+    (0.1, 0.1)
     """
-    det = np.concatenate([diagonal_detail(p).ravel() for p in _planes(image)])
+    if not 0 < flattest <= 1:
+        raise ValueError(f"flattest must be in (0, 1], got {flattest!r}")
+    parts = []
+    for p in _planes(image):
+        d = diagonal_detail(p)
+        if flattest < 1:
+            sm = ndimage.gaussian_filter(p, FLATNESS_SMOOTHING, mode="reflect")
+            g = np.hypot(ndimage.sobel(sm, 0), ndimage.sobel(sm, 1))
+            g = g[1::2, 1::2][:d.shape[0], :d.shape[1]]  # coefficient (i, j) sits at (2i+1, 2j+1)
+            d = d[:g.shape[0], :g.shape[1]]
+            d = d[g <= np.quantile(g, flattest)]
+        parts.append(d.ravel())
+    det = np.concatenate(parts)
     det = det[det != 0]
     if det.size == 0:
         return 0.0
