@@ -1038,7 +1038,7 @@ def _cg_start(X, B, w, offsets, dw, minv, Rr, P, Q, Zr, rows):
     for k in prange(Z * H):
         z = k // H
         i = k - z * H
-        tmp = np.empty(W)
+        tmp = np.empty(W, X.dtype)
         mrow = minv[z, i]
         for s in range(S):
             _q_row(X[s], w, offsets, dw, z, i, tmp)
@@ -1112,7 +1112,7 @@ def _cg_direction(w, offsets, dw, P, Q, Zr, beta, active, rows):
     for k in prange(Z * H):
         z = k // H
         i = k - z * H
-        tmp = np.empty(W)
+        tmp = np.empty(W, P.dtype)
         for s in range(S):
             if not active[s]:
                 continue
@@ -1160,6 +1160,9 @@ def gmrf_cg(X, B, w, offsets, dw, minv, tols, max_iter, Rr, P, Q, Zr):
         active[s] = rr[s] > target[s]
     alpha = np.zeros(S)
     beta = np.zeros(S)
+    # step lengths in the solver's precision, so float32 loops stay float32
+    alpha_s = np.zeros(S, X.dtype)
+    beta_s = np.zeros(S, X.dtype)
     it = 0
     while it < max_iter:
         any_active = False
@@ -1171,7 +1174,9 @@ def gmrf_cg(X, B, w, offsets, dw, minv, tols, max_iter, Rr, P, Q, Zr):
             alpha[s] = rz[s] / pq[s] if (active[s] and pq[s] > 0.0) else 0.0
             if active[s] and not pq[s] > 0.0:
                 active[s] = False
-        _cg_update(X, Rr, P, Q, Zr, minv, alpha, rows)
+        for s in range(S):
+            alpha_s[s] = alpha[s]
+        _cg_update(X, Rr, P, Q, Zr, minv, alpha_s, rows)
         for s in range(S):
             if alpha[s] == 0.0:
                 continue
@@ -1187,7 +1192,9 @@ def gmrf_cg(X, B, w, offsets, dw, minv, tols, max_iter, Rr, P, Q, Zr):
         it += 1
         if it >= max_iter:
             break
-        _cg_direction(w, offsets, dw, P, Q, Zr, beta, active, rows)
+        for s in range(S):
+            beta_s[s] = beta[s]
+        _cg_direction(w, offsets, dw, P, Q, Zr, beta_s, active, rows)
         for s in range(S):
             if active[s]:
                 a = 0.0

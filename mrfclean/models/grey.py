@@ -75,6 +75,10 @@ NEIGHBOURHOODS = {
 
 #: File name of the learned prior shipped in ``mrfclean/data``.
 PRIOR_FILE = "grey_prior.json"
+#: Conjugate gradients run in float32 when both tolerances are at least this
+#: (float32 resolves 6e-8, so the recursion's rounding stays far below them);
+#: tighter solves, as in the exact-posterior tests, run in float64.
+SINGLE_PRECISION_TOL = 1e-4
 
 
 @dataclass(frozen=True)
@@ -395,22 +399,28 @@ class GreyModel(ChainModel):
                        for s in (starts if starts is not None else [self.y])]
         n = len(self.offsets)
         shape = self.grid.shape
-        self.w = np.zeros((n, *shape))
-        self._buf = {k: np.zeros((2, *shape)) for k in ("x", "r", "p", "q", "z")}
-        self._diag = np.zeros(shape)
-        self._minv = np.zeros(shape)
-        self._eta = np.zeros(shape)
+        # The solver works in single precision when both tolerances are far above
+        # its resolution (6e-8): half the memory traffic and twice the vector width.
+        ft = np.float32 if min(self.tol, self.sample_tol) >= SINGLE_PRECISION_TOL else np.float64
+        self.solver_dtype = np.dtype(ft)
+        self._dw_s = self.dw.astype(ft)
+        self._b_s = self.b.astype(ft)
+        self.w = np.zeros((n, *shape), ft)
+        self._buf = {k: np.zeros((2, *shape), ft) for k in ("x", "r", "p", "q", "z")}
+        self._diag = np.zeros(shape, ft)
+        self._minv = np.zeros(shape, ft)
+        self._eta = np.zeros(shape, ft)
         self._pbuf = None  # clique normals of a perturbation, allocated at the first draw
         self.stats = SolverStats()
 
     # --- linear algebra -------------------------------------------------------------
     def _set_operator(self):
-        kernels.gmrf_diagonal(self.w, self.offsets, self.dw, self._diag)
+        kernels.gmrf_diagonal(self.w, self.offsets, self._dw_s, self._diag)
         np.divide(1.0, self._diag, out=self._minv)
 
     def apply(self, x, weights=None):
         """``Q x`` for the current (or given) clique weights; ``x`` of shape ``(Z, H, W)``."""
-        w = self.w if weights is None else np.ascontiguousarray(weights, dtype=np.float64)
+        w = np.ascontiguousarray(self.w if weights is None else weights, dtype=np.float64)
         xs = np.ascontiguousarray(np.asarray(x, dtype=np.float64).reshape(1, *self.grid.shape))
         out = np.empty_like(xs)
         kernels.gmrf_matvec(xs, w, self.offsets, self.dw, out, np.empty((1, self.grid.shape[0] * self.grid.shape[1])))
@@ -427,8 +437,8 @@ class GreyModel(ChainModel):
         X, Rr, P, Qp, Zr = (self._buf[k][:R] for k in ("x", "r", "p", "q", "z"))
         X[...] = x0
         tols = np.full(R, self.tol) if tols is None else np.asarray(tols, dtype=np.float64)
-        B = np.ascontiguousarray(rhs, dtype=np.float64)
-        it, worst = kernels.gmrf_cg(X, B, self.w, self.offsets, self.dw, self._minv, tols,
+        B = np.ascontiguousarray(rhs, dtype=self.solver_dtype)
+        it, worst = kernels.gmrf_cg(X, B, self.w, self.offsets, self._dw_s, self._minv, tols,
                                     self.max_iter, Rr, P, Qp, Zr)
         self.stats.solves += 1
         self.stats.iterations += int(it)
@@ -463,10 +473,10 @@ class GreyModel(ChainModel):
         if temperature > 0:
             if self._pbuf is None:
                 self._pbuf = np.empty_like(self.w)
-            kernels.gmrf_perturbation(self.w, self.offsets, self.dw,
+            kernels.gmrf_perturbation(self.w, self.offsets, self._dw_s,
                                       kernels.derive_key(np.uint64(key), kernels._GREY_NOISE_SALT),
                                       math.sqrt(temperature), self._eta, self._pbuf)
-            rhs = np.stack([self.b, self._eta])
+            rhs = np.stack([self._b_s, self._eta])
             x0 = np.stack([state.mu, np.zeros_like(state.mu)])
             X, it = self.solve(rhs, x0, (self.tol, self.sample_tol))
             state.mu[...] = X[0]
