@@ -717,10 +717,11 @@ def _gsm_clique(la, pr, lam, d2, it, lp):
 
 
 @njit(inline="always", cache=True)
-def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp):
+def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, draw):
     """Draw at T = 1 of the cliques ``(j, j + dj)``, ``j`` in ``range(lo, hi)``, on the 4^c ladder.
 
-    Returns their prior energy (scales summed out).  A clique whose sum is
+    Returns their prior energy (scales summed out); with ``draw`` False only
+    the energy (``crow`` is not touched).  A clique whose sum is
     below :data:`_LADDER_TINY` (all scales far in the tail) takes the general
     path of :func:`_gsm_clique`.
     """
@@ -751,6 +752,8 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp):
         else:
             m, tot, c = _gsm_clique(la, pr, lam, d2, 1.0, lp)
             acc -= m + np.log(tot)
+        if not draw:
+            continue
         u = uniform(key, base + j) * tot
         c = 0
         a = lp[0]
@@ -772,7 +775,7 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
     plus data term) of ``x``.  ``mode`` mean: posterior-mean weights into ``w``.
     ``mode`` energy: only the prior energy.
 
-    ``amp`` (draw at T = 1 only, empty otherwise): ``exp(logamp - max logamp)``
+    ``amp`` (draw or energy at T = 1, empty otherwise): ``exp(logamp - max logamp)``
     per offset, given when the precisions form the ladder ``prec[c] = prec[0]
     4^c`` (see :func:`ladder4`).  Then ``exp(-lam prec[c] d^2 / 2)`` is
     ``e^(4^c)`` with ``e = exp(-lam prec[0] d^2 / 2)``: one exp and two
@@ -785,7 +788,8 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
     N = Z * H * W
     it = 1.0 / temperature if temperature > 0.0 else 1.0
     draw = mode == _GSM_DRAW
-    fast = draw and temperature == 1.0 and amp.shape[0] == n
+    fast = mode != _GSM_MEAN and temperature == 1.0 and amp.shape[0] == n
+    nocomp = np.zeros(0, np.uint8)
     for k in prange(Z * H):
         z = k // H
         i = k - z * H
@@ -825,7 +829,8 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
             pr = prec[o]
             base = o * N + (z * H + i) * W
             if fast:
-                acc += _ladder_draw(xrow, nrow, dj, lo, hi, amp[o], la, pr, lam, key, base, crow, lp)
+                acc += _ladder_draw(xrow, nrow, dj, lo, hi, amp[o], la, pr, lam, key, base,
+                                    comp[o, z, i] if draw else nocomp, lp, draw)
                 continue
             for j in range(lo, hi):
                 d = nrow[j + dj] - xrow[j]
@@ -869,12 +874,17 @@ def gsm_draw_components(x, y, dw, offsets, logamp, prec, strength, temperature, 
     from the same logits, so a sweep needs no separate energy pass.
     """
     rows = np.empty(x.shape[0] * x.shape[1])
-    amp = _EMPTY2
-    if float(temperature) == 1.0 and ladder4(prec):
-        amp = np.exp(logamp - logamp.max(axis=1, keepdims=True))
+    amp = _ladder_amplitudes(logamp, prec) if float(temperature) == 1.0 else _EMPTY2
     _gsm_rows(x, y, dw, offsets, logamp, prec, strength, float(temperature), np.uint64(key),
               _GSM_DRAW, _EMPTY4, comp, rows, amp)
     return _ordered_sum(rows)
+
+
+def _ladder_amplitudes(logamp, prec):
+    """``exp(logamp - max logamp)`` per offset when ``prec`` is on the 4^c ladder, else empty."""
+    if not ladder4(prec):
+        return _EMPTY2
+    return np.exp(logamp - logamp.max(axis=1, keepdims=True))
 
 
 def ladder4(prec):
@@ -930,7 +940,7 @@ def gsm_prior_energy(x, offsets, logamp, prec, strength):
     """``-sum_cliques log sum_c exp(logamp[o, c] - strength[o] prec[o, c] d^2 / 2)``."""
     rows = np.empty(x.shape[0] * x.shape[1])
     _gsm_rows(x, x, x, offsets, logamp, prec, strength, 1.0, np.uint64(0), _GSM_ENERGY,
-              _EMPTY4, _EMPTY4U, rows)
+              _EMPTY4, _EMPTY4U, rows, _ladder_amplitudes(logamp, prec))
     return _ordered_sum(rows)
 
 

@@ -404,12 +404,12 @@ class GreyModel(ChainModel):
         ft = np.float32 if min(self.tol, self.sample_tol) >= SINGLE_PRECISION_TOL else np.float64
         self.solver_dtype = np.dtype(ft)
         self._dw_s = self.dw.astype(ft)
-        self._b_s = self.b.astype(ft)
         self.w = np.zeros((n, *shape), ft)
         self._buf = {k: np.zeros((2, *shape), ft) for k in ("x", "r", "p", "q", "z")}
         self._diag = np.zeros(shape, ft)
         self._minv = np.zeros(shape, ft)
-        self._eta = np.zeros(shape, ft)
+        self._rhs = np.zeros((2, *shape), ft)  # [b, perturbation] of a temperature > 0 update
+        self._rhs[0] = self.b
         self._pbuf = None  # clique normals of a perturbation, allocated at the first draw
         self.stats = SolverStats()
 
@@ -429,13 +429,15 @@ class GreyModel(ChainModel):
     def solve(self, rhs, x0, tols=None):
         """Solve ``Q x = rhs[s]`` for every row ``s`` by Jacobi-preconditioned CG from ``x0``.
 
-        ``rhs`` and ``x0`` have shape ``(R, Z, H, W)`` with ``R <= 2``; ``tols``
-        gives each system's relative residual (default ``tol``).  Returns the
+        ``rhs`` has shape ``(R, Z, H, W)`` with ``R <= 2`` and ``x0`` holds ``R``
+        starting images (or scalars); ``tols`` gives each system's relative
+        residual (default ``tol``).  Returns the
         solutions (a view into a work buffer) and the iterations made.
         """
         R = rhs.shape[0]
         X, Rr, P, Qp, Zr = (self._buf[k][:R] for k in ("x", "r", "p", "q", "z"))
-        X[...] = x0
+        for k in range(R):
+            X[k] = x0[k]
         tols = np.full(R, self.tol) if tols is None else np.asarray(tols, dtype=np.float64)
         B = np.ascontiguousarray(rhs, dtype=self.solver_dtype)
         it, worst = kernels.gmrf_cg(X, B, self.w, self.offsets, self._dw_s, self._minv, tols,
@@ -475,10 +477,8 @@ class GreyModel(ChainModel):
                 self._pbuf = np.empty_like(self.w)
             kernels.gmrf_perturbation(self.w, self.offsets, self._dw_s,
                                       kernels.derive_key(np.uint64(key), kernels._GREY_NOISE_SALT),
-                                      math.sqrt(temperature), self._eta, self._pbuf)
-            rhs = np.stack([self._b_s, self._eta])
-            x0 = np.stack([state.mu, np.zeros_like(state.mu)])
-            X, it = self.solve(rhs, x0, (self.tol, self.sample_tol))
+                                      math.sqrt(temperature), self._rhs[1], self._pbuf)
+            X, it = self.solve(self._rhs, (state.mu, 0.0), (self.tol, self.sample_tol))
             state.mu[...] = X[0]
             np.add(X[0], X[1], out=state.x)
         else:
