@@ -717,50 +717,75 @@ def _gsm_clique(la, pr, lam, d2, it, lp):
 
 
 @njit(inline="always", cache=True)
-def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, draw):
+def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, draw, buf):
     """Draw at T = 1 of the cliques ``(j, j + dj)``, ``j`` in ``range(lo, hi)``, on the 4^c ladder.
 
     Returns their prior energy (scales summed out); with ``draw`` False only
-    the energy (``crow`` is not touched).  A clique whose sum is
-    below :data:`_LADDER_TINY` (all scales far in the tail) takes the general
-    path of :func:`_gsm_clique`.
+    the energy (``crow`` is not touched).  The running sums over the scales
+    are built for the whole row at once in ``buf`` (``K + 2`` rows of scratch),
+    one scale at a time, so those loops vectorise; each clique's arithmetic is
+    the same as one at a time.  A clique whose sum is below
+    :data:`_LADDER_TINY` (all scales far in the tail) takes the general path
+    of :func:`_gsm_clique`.
     """
     K = am.shape[0]
     lmax = la[0]
     for c in range(K):
         lmax = max(lmax, la[c])
     g = -0.5 * lam * pr[0]
+    n = hi - lo
+    d2v = buf[0, :n]
+    ev = buf[K + 1, :n]
+    xv = xrow[lo:hi]
+    nv = nrow[lo + dj:hi + dj]
+    for t in range(n):
+        d = nv[t] - xv[t]
+        d2v[t] = d * d
+    for t in range(n):
+        ev[t] = np.exp(g * d2v[t])
+    for c in range(K):  # buf[1 + c] = sum of the first c + 1 terms am[c'] e^(4^c')
+        cur = buf[1 + c, :n]
+        ac = am[c]
+        if c == 0:
+            for t in range(n):
+                cur[t] = ac * ev[t]
+        else:
+            prev = buf[c, :n]
+            for t in range(n):
+                cur[t] = prev[t] + ac * ev[t]
+        for t in range(n):
+            e2 = ev[t] * ev[t]
+            ev[t] = e2 * e2
+    tots = buf[K, :n]
     prod = 1.0
     acc = 0.0
-    for j in range(lo, hi):
-        d = nrow[j + dj] - xrow[j]
-        d2 = d * d
-        e = np.exp(g * d2)
-        tot = 0.0
-        for c in range(K):
-            v = am[c] * e
-            lp[c] = v
-            tot += v
-            e = e * e
-            e = e * e
+    for t in range(n):
+        tot = tots[t]
+        j = lo + t
         if tot > _LADDER_TINY:
             prod *= tot
             if not (_PROD_LO <= prod <= _PROD_HI):
                 acc -= np.log(prod)
                 prod = 1.0
             acc -= lmax
+            if draw:
+                # the first c whose running sum exceeds u
+                u = uniform(key, base + j) * tot
+                c = 0
+                while c < K - 1 and buf[1 + c, t] <= u:
+                    c += 1
+                crow[j] = c
         else:
-            m, tot, c = _gsm_clique(la, pr, lam, d2, 1.0, lp)
+            m, tot, c = _gsm_clique(la, pr, lam, d2v[t], 1.0, lp)
             acc -= m + np.log(tot)
-        if not draw:
-            continue
-        u = uniform(key, base + j) * tot
-        c = 0
-        a = lp[0]
-        while a <= u and c < K - 1:
-            c += 1
-            a += lp[c]
-        crow[j] = c
+            if draw:
+                u = uniform(key, base + j) * tot
+                c = 0
+                a = lp[0]
+                while a <= u and c < K - 1:
+                    c += 1
+                    a += lp[c]
+                crow[j] = c
     return acc - np.log(prod)
 
 
@@ -794,6 +819,7 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
         z = k // H
         i = k - z * H
         lp = np.empty(K)
+        scratch = np.empty((K + 2, W) if fast else (0, 0))
         xrow = x[z, i]
         acc = 0.0
         if draw:
@@ -830,7 +856,7 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
             base = o * N + (z * H + i) * W
             if fast:
                 acc += _ladder_draw(xrow, nrow, dj, lo, hi, amp[o], la, pr, lam, key, base,
-                                    comp[o, z, i] if draw else nocomp, lp, draw)
+                                    comp[o, z, i] if draw else nocomp, lp, draw, scratch)
                 continue
             for j in range(lo, hi):
                 d = nrow[j + dj] - xrow[j]
