@@ -57,7 +57,17 @@ STRENGTH_GUESS = (-4.567, -1.364)
 
 
 def strength_guess(noise_sd):
-    """Starting strength of the SURE walk for a noise sd in the prior's units (clipped to 1/16..4).
+    """Starting strength of the SURE walk with the shipped prior (clipped to 1/16..4).
+
+    Parameters
+    ----------
+    noise_sd : float
+        Noise standard deviation in the prior's units (intensity / span).
+
+    Returns
+    -------
+    float
+        ``exp(a + b log noise_sd)`` with ``(a, b) =`` :data:`STRENGTH_GUESS`.
 
     Examples
     --------
@@ -336,8 +346,9 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     setup = GreySetup(term, low, span, base, estimated, None, noise_curve)
     if strength == "auto":
         u, var_u = setup.observed(y, pilot)
-        fit = choose_strength(u, var_u, base, start=strength_guess(float(np.sqrt(np.mean(var_u)))),
-                              seed=seed ^ 0x3C3C3C3C, tol=tol)
+        # the guess was fitted for the shipped prior; another prior starts at 0.5
+        start = strength_guess(float(np.sqrt(np.mean(var_u)))) if prior is None else 0.5
+        fit = choose_strength(u, var_u, base, start=start, seed=seed ^ 0x3C3C3C3C, tol=tol)
         lam = fit.strength
         setup.sure_table = fit.table
         estimated.append("strength")

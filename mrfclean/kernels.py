@@ -464,8 +464,27 @@ def ziggurat_tables(layers=256):
     ``f(x) = exp(-x^2 / 2)``; layer ``i >= 1`` is the box ``[0, x[i]] x
     [f(x[i]), f(x[i+1])]``, the base layer is ``[0, r] x [0, f(r)]`` plus the
     tail beyond ``r = x[1]``, and all have the same area ``v``; ``x[0] = v / f(r)``
-    and ``x[layers] = 0`` (Marsaglia & Tsang 2000; Doornik 2005).  ``r`` is
-    found here by bisection so that the top layer closes at 0.
+    and ``x[layers] = 0``.  ``r`` is found here by bisection so that the top
+    layer closes at 0.
+
+    Parameters
+    ----------
+    layers : int
+        Number of layers (256 for :func:`normal`).
+
+    Returns
+    -------
+    x : ndarray, shape (layers + 1,)
+        Layer edges, decreasing from ``x[0]`` to 0.
+    ratio : ndarray, shape (layers,)
+        ``x[i + 1] / x[i]``: a uniform in layer ``i`` below it is accepted at once.
+
+    References
+    ----------
+    .. [1] G. Marsaglia and W. W. Tsang, "The ziggurat method for generating
+       random variables", J. Statistical Software 5(8), 2000.
+    .. [2] J. A. Doornik, "An improved ziggurat method to generate normal
+       random samples", University of Oxford, 2005.
     """
     def top(r):
         v = r * math.exp(-0.5 * r * r) + math.sqrt(math.pi / 2) * math.erfc(r / math.sqrt(2))
@@ -916,6 +935,15 @@ def _ladder_amplitudes(logamp, prec):
 def ladder4(prec):
     """True when every row of ``prec`` is exactly ``prec[o, 0] * 4**c`` (``c = 0 .. K-1``).
 
+    Parameters
+    ----------
+    prec : array_like, shape (..., K)
+        Scale precisions per offset.
+
+    Returns
+    -------
+    bool
+
     Multiplying by a power of 4 is exact in binary floating point, so the
     test is an equality; priors on this ladder get the one-exp draw of
     :func:`gsm_draw_components`.
@@ -1091,9 +1119,9 @@ def _cg_start(X, B, w, offsets, dw, minv, Rr, P, Q, Zr, rows):
                 zj = mrow[j] * rj
                 zrow[j] = zj
                 prow[j] = zj
-                a0 += rj * zj
-                a1 += rj * rj
-                a2 += brow[j] * brow[j]
+                a0 += float64(rj) * zj  # products in float64: no overflow in float32
+                a1 += float64(rj) * rj
+                a2 += float64(brow[j]) * brow[j]
             rows[0, s, k] = a0
             rows[1, s, k] = a1
             rows[2, s, k] = a2
@@ -1106,7 +1134,7 @@ def _cg_start(X, B, w, offsets, dw, minv, Rr, P, Q, Zr, rows):
             prow = P[s, z, i]
             acc = 0.0
             for j in range(W):
-                acc += prow[j] * qrow[j]
+                acc += float64(prow[j]) * qrow[j]
             rows[3, s, k] = acc
 
 
@@ -1135,8 +1163,8 @@ def _cg_update(X, Rr, P, Q, Zr, minv, alpha, rows):
                 rrow[j] = rj
                 zj = mrow[j] * rj
                 zrow[j] = zj
-                a0 += rj * zj
-                a1 += rj * rj
+                a0 += float64(rj) * zj
+                a1 += float64(rj) * rj
             rows[0, s, k] = a0
             rows[1, s, k] = a1
 
@@ -1163,7 +1191,7 @@ def _cg_direction(w, offsets, dw, P, Q, Zr, beta, active, rows):
                 qj = tmp[j] + b * qrow[j]
                 prow[j] = pj
                 qrow[j] = qj
-                acc += pj * qj
+                acc += float64(pj) * qj
             rows[3, s, k] = acc
 
 
@@ -1214,7 +1242,7 @@ def gmrf_cg(X, B, w, offsets, dw, minv, tols, max_iter, Rr, P, Q, Zr):
             alpha_s[s] = alpha[s]
         _cg_update(X, Rr, P, Q, Zr, minv, alpha_s, rows)
         for s in range(S):
-            if alpha[s] == 0.0:
+            if alpha_s[s] == 0.0:  # _cg_update skipped it (also when float32 rounds to 0)
                 continue
             a0 = 0.0
             a1 = 0.0

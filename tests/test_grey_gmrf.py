@@ -91,7 +91,8 @@ def test_single_precision_solve_meets_its_tolerance(tol):
 def test_ziggurat_tables_match_published_constants():
     """The base-layer edge r found by bisection: 3.442619855899 for 128 layers (Marsaglia &
     Tsang 2000, J. Stat. Softw. 5(8), printed to 12 decimals) and 3.6541528853610088 for 256
-    (Doornik 2005, ZIGNOR, from memory); every layer has the same area."""
+    (Doornik 2005, ZIGNOR; the value printed in implementations of it, from memory); every
+    layer has the same area."""
     x128, _ = kernels.ziggurat_tables(128)
     assert x128[1] == pytest.approx(3.442619855899, abs=5e-12)
     x, ratio = kernels.ziggurat_tables(256)
@@ -249,6 +250,28 @@ def test_energy_from_the_scale_draw_equals_direct_energy(temperature, spread):
         m.sweep(st, temperature, int(kernels.stream_key(4, 0, k)))
         assert m.energy(st) == pytest.approx(_energy_reference(m, st.x), rel=1e-12)
         assert m.energy_of(st.x) == pytest.approx(_energy_reference(m, st.x), rel=1e-12)
+
+
+def test_far_tail_draw_at_unit_temperature_takes_the_general_path():
+    """A clique difference of 15 (prior units) at T = 1: the one-exp path's clique sum is below
+    its floor (checked here), so the general path draws.  The exact probabilities (numpy, log
+    space) put all but a negligible share on the smallest precision: every draw must take it."""
+    prior = GSMPrior.load()
+    d = 15.0
+    y = np.array([[0.0, d]])
+    m = GreyModel(y, variance=1.0, prior=prior)
+    o = 0
+    lp = m.logamp[o] - 0.5 * m.strength[o] * m.prec[o] * d * d
+    assert np.sum(np.exp(m.logamp[o] - m.logamp[o].max() - 0.5 * m.strength[o] * m.prec[o] * d * d)) < 1e-100
+    p = np.exp(lp - lp.max())
+    p /= p.sum()
+    assert p[np.argmin(m.prec[o])] > 1 - 1e-12
+    comp = np.empty((len(m.offsets), 1, 1, 2), np.uint8)
+    x = y.reshape(1, 1, 2)
+    for k in range(300):
+        kernels.gsm_draw_components(x, x, m.dw, m.offsets, m.logamp, m.prec, m.strength, 1.0,
+                                    np.uint64(kernels.stream_key(78, 0, k)), comp)
+        assert comp[o, 0, 0, 0] == np.argmin(m.prec[o])
 
 
 @pytest.mark.parametrize("temperature", [1.0, 0.5])

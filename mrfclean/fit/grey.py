@@ -83,6 +83,32 @@ FLATTEST_SHARE = 0.5
 FLATNESS_SMOOTHING = 2.0
 
 
+def _flattest(p, d, share):
+    """Coefficients ``d`` of plane ``p`` where its smoothed copy is flattest (a ``share`` of them).
+
+    Where the plane sits at its minimum or maximum over more than 1% of its
+    pixels (a clipped background or saturation), coefficients whose smoothed
+    value is within three plain-MAD sigmas of that level are left out first:
+    clipping removes part of their noise, and they are the flattest of all.
+    """
+    sm = ndimage.gaussian_filter(p, FLATNESS_SMOOTHING, mode="reflect")
+    g = np.hypot(ndimage.sobel(sm, 0), ndimage.sobel(sm, 1))
+    g = g[1::2, 1::2][:d.shape[0], :d.shape[1]]  # coefficient (i, j) sits at (2i+1, 2j+1)
+    d = d[:g.shape[0], :g.shape[1]]
+    ok = np.ones(d.shape, bool)
+    lo, hi = float(p.min()), float(p.max())
+    margin = 3.0 * float(np.median(np.abs(d))) / MAD_TO_SIGMA
+    level = sm[1::2, 1::2][:d.shape[0], :d.shape[1]]
+    if np.mean(p == lo) > 0.01:
+        ok &= level > lo + margin
+    if np.mean(p == hi) > 0.01:
+        ok &= level < hi - margin
+    if ok.sum() < 0.05 * ok.size:  # nearly all clipped: nothing better to go on
+        ok[...] = True
+    g, d = g[ok], d[ok]
+    return d[g <= np.quantile(g, share)]
+
+
 def estimate_sigma(image, *, flattest=1.0) -> float:
     r"""Standard deviation of additive white Gaussian noise, by wavelet MAD.
 
@@ -100,8 +126,9 @@ def estimate_sigma(image, *, flattest=1.0) -> float:
         :data:`FLATNESS_SMOOTHING` pixels is smallest.  Edges and texture leak
         into the diagonal band and make the plain MAD read high at low noise;
         leaving them out is the edge exclusion of [2]_, here applied to the
-        wavelet estimator.  1 (default): every coefficient, as
-        ``skimage.restoration.estimate_sigma``.
+        wavelet estimator.  Near a level where many pixels sit (clipped
+        background, saturation) nothing is kept.  1 (default): every
+        coefficient, as ``skimage.restoration.estimate_sigma``.
 
     Returns
     -------
@@ -127,11 +154,7 @@ def estimate_sigma(image, *, flattest=1.0) -> float:
     for p in _planes(image):
         d = diagonal_detail(p)
         if flattest < 1:
-            sm = ndimage.gaussian_filter(p, FLATNESS_SMOOTHING, mode="reflect")
-            g = np.hypot(ndimage.sobel(sm, 0), ndimage.sobel(sm, 1))
-            g = g[1::2, 1::2][:d.shape[0], :d.shape[1]]  # coefficient (i, j) sits at (2i+1, 2j+1)
-            d = d[:g.shape[0], :g.shape[1]]
-            d = d[g <= np.quantile(g, flattest)]
+            d = _flattest(p, d, flattest)
         parts.append(d.ravel())
     det = np.concatenate(parts)
     det = det[det != 0]
@@ -417,6 +440,16 @@ def _crop_windows(shape, size, count):
 
 def sure_window(shape):
     """Side of the SURE windows for an ``(H, W)`` plane: 3/16 of its shorter side, in 64..128.
+
+    Parameters
+    ----------
+    shape : (int, int)
+        ``(H, W)`` of the plane.
+
+    Returns
+    -------
+    int
+        Window side in pixels (a multiple of 8).
 
     Four such windows cover about 1/7 of a 512^2 image (with 64^2 windows they
     covered 1/16, and the chosen strength was 1.5x the oracle's on average;

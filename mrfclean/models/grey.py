@@ -358,10 +358,12 @@ class GreyModel(ChainModel):
 
     Notes
     -----
-    Memory per pixel and offset ``n``: the clique weights (8 bytes), the
-    clique normals of a perturbation (8 bytes) and each chain's drawn scale
-    components (1 byte), plus ten float64 images for two conjugate-gradient
-    systems.
+    Memory per pixel and offset ``n``: the clique weights and the clique
+    normals of a perturbation (one solver word each: 4 bytes in float32, see
+    :attr:`solver_dtype`, 8 in float64) and each chain's drawn scale
+    components (1 byte), plus fourteen solver-word images (two
+    conjugate-gradient systems of five vectors, two right-hand sides, the
+    diagonal and its inverse) and the float64 data, chain states and tallies.
 
     Examples
     --------
@@ -549,7 +551,7 @@ class GreyModel(ChainModel):
         self.w[...] = weights
         self._set_operator()
         X, _ = self.solve(self.b[None], self.y[None])
-        return X[0].copy()
+        return X[0].astype(np.float64)
 
     def describe(self):
         return {**self.prior.describe(), "cg_tol": self.tol, "cg_sample_tol": self.sample_tol}
