@@ -736,6 +736,18 @@ def _gsm_clique(la, pr, lam, d2, it, lp):
 
 
 @njit(inline="always", cache=True)
+def _pick(lp, u):
+    """The component whose share of ``lp`` (weights, summed in order) holds ``u`` in [0, sum)."""
+    K = lp.shape[0]
+    c = 0
+    a = lp[0]
+    while a <= u and c < K - 1:
+        c += 1
+        a += lp[c]
+    return c
+
+
+@njit(inline="always", cache=True)
 def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, draw, buf):
     """Draw at T = 1 of the cliques ``(j, j + dj)``, ``j`` in ``range(lo, hi)``, on the 4^c ladder.
 
@@ -798,13 +810,7 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
             m, tot, c = _gsm_clique(la, pr, lam, d2v[t], 1.0, lp)
             acc -= m + np.log(tot)
             if draw:
-                u = uniform(key, base + j) * tot
-                c = 0
-                a = lp[0]
-                while a <= u and c < K - 1:
-                    c += 1
-                    a += lp[c]
-                crow[j] = c
+                crow[j] = _pick(lp, uniform(key, base + j) * tot)
     return acc - np.log(prod)
 
 
@@ -890,12 +896,7 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
                 m, tot, c = _gsm_clique(la, pr, lam, d2, it if draw else 1.0, lp)
                 if draw:
                     if temperature > 0.0:
-                        u = uniform(key, base + j) * tot
-                        c = 0
-                        a = lp[0]
-                        while a <= u and c < K - 1:
-                            c += 1
-                            a += lp[c]
+                        c = _pick(lp, uniform(key, base + j) * tot)
                     crow[j] = c
                     if it != 1.0:  # the energy is untempered: redo the sums at T = 1
                         m, tot, c = _gsm_clique(la, pr, lam, d2, 1.0, lp)
