@@ -486,25 +486,29 @@ def ziggurat_tables(layers=256):
     .. [2] J. A. Doornik, "An improved ziggurat method to generate normal
        random samples", University of Oxford, 2005.
     """
+    def area(r):
+        return r * math.exp(-0.5 * r * r) + math.sqrt(math.pi / 2) * math.erfc(r / math.sqrt(2))
+
     def top(r):
-        v = r * math.exp(-0.5 * r * r) + math.sqrt(math.pi / 2) * math.erfc(r / math.sqrt(2))
+        """How far above f(0) = 1 the top layer ends (> 0: r too small)."""
+        v = area(r)
         x = r
         for _ in range(layers - 2):
             a = math.exp(-0.5 * x * x) + v / x
             if a >= 1.0:
-                return 1.0, v, None  # closed too early: r too small
+                return 1.0  # closed too early: r too small
             x = math.sqrt(-2.0 * math.log(a))
-        return math.exp(-0.5 * x * x) + v / x - 1.0, v, x
+        return math.exp(-0.5 * x * x) + v / x - 1.0
 
     lo, hi = 2.0, 5.0
     for _ in range(200):
         mid = 0.5 * (lo + hi)
-        if top(mid)[0] > 0.0:
+        if top(mid) > 0.0:
             lo = mid
         else:
             hi = mid
     r = hi
-    _, v, _ = top(r)
+    v = area(r)
     x = np.empty(layers + 1)
     x[0] = v / math.exp(-0.5 * r * r)
     x[1] = r
@@ -518,6 +522,12 @@ _ZIG_X, _ZIG_RATIO = ziggurat_tables(256)
 _ZIG_F = np.exp(-0.5 * _ZIG_X**2)
 _ZIG_SALT = np.uint64(0x3C6EF372FE94F82B)
 _U8 = np.uint64(0xFF)
+
+
+@njit(inline="always", cache=True)
+def _layer_and_uniform(h):
+    """Layer (low 8 bits of hash ``h``) and a signed uniform in [-1, 1) (its top 53 bits)."""
+    return int64(h & _U8), 2.0 * float64(h >> _S11) * _TWO53_INV - 1.0
 
 
 @njit(cache=True)
@@ -545,9 +555,7 @@ def _ziggurat_slow(key, counter, i, u):
         if _ZIG_F[i] + t * (_ZIG_F[i + 1] - _ZIG_F[i]) < fx:
             return xx
         st += _GAMMA
-        h = mix64(st)
-        i = int64(h & _U8)
-        u = 2.0 * float64(h >> _S11) * _TWO53_INV - 1.0
+        i, u = _layer_and_uniform(mix64(st))
         if abs(u) < _ZIG_RATIO[i]:
             return u * _ZIG_X[i]
 
@@ -558,18 +566,9 @@ def normal(key, counter):
 
     One hash gives the layer (low 8 bits) and a signed uniform (top 53 bits);
     about 99% of variates are then one multiply.  The rest go through
-    :func:`_ziggurat_slow`.
-
-    References
-    ----------
-    .. [1] G. Marsaglia and W. W. Tsang, "The ziggurat method for generating
-       random variables", J. Statistical Software 5(8), 2000.
-    .. [2] J. A. Doornik, "An improved ziggurat method to generate normal
-       random samples", University of Oxford, 2005.
+    :func:`_ziggurat_slow`.  Method and references: :func:`ziggurat_tables`.
     """
-    h = mix64(key + uint64(counter) * _GAMMA)
-    i = int64(h & _U8)
-    u = 2.0 * float64(h >> _S11) * _TWO53_INV - 1.0
+    i, u = _layer_and_uniform(mix64(key + uint64(counter) * _GAMMA))
     if abs(u) < _ZIG_RATIO[i]:
         return u * _ZIG_X[i]
     return _ziggurat_slow(key, counter, i, u)
