@@ -79,6 +79,14 @@ PRIOR_FILE = "grey_prior.json"
 #: (float32 resolves 6e-8, so the recursion's rounding stays far below them);
 #: tighter solves, as in the exact-posterior tests, run in float64.
 SINGLE_PRECISION_TOL = 1e-4
+#: The conditional-mean system is solved until the bound on its error,
+#: ``||x - x*|| <= v ||r||`` (constant noise variance ``v``, as ``Q >= V^-1``),
+#: is at most this share of the noise's root-sum-square ``sqrt(N v)``: a loose
+#: relative residual leaves an error proportional to the signal, which at very
+#: low noise is as large as the posterior's own spread and makes chains disagree.
+MEAN_ERROR_SHARE = 0.03
+#: Smallest relative residual asked of a solve.
+MIN_TOL = 1e-10
 
 
 @dataclass(frozen=True)
@@ -350,7 +358,8 @@ class GreyModel(ChainModel):
         Default: the observed image.
     tol : float
         Conjugate gradients for the conditional mean stop when
-        ``||r|| <= tol * ||b||``.
+        ``||r|| <= tol * ||b||``, or tighter at low noise (see
+        :data:`MEAN_ERROR_SHARE` and :attr:`mean_tol`).
     sample_tol : float, optional
         The same for the perturbation system of a draw (default ``tol``).
     max_iter : int
@@ -396,6 +405,10 @@ class GreyModel(ChainModel):
         for name, t in (("tol", self.tol), ("sample_tol", self.sample_tol)):
             if not (0 < t < 1):
                 raise ValueError(f"{name} must be in (0, 1), got {t!r}")
+        bnorm = float(np.linalg.norm(self.b))
+        #: relative residual of the conditional-mean solves
+        self.mean_tol = self.tol if bnorm == 0 else max(MIN_TOL, min(
+            self.tol, MEAN_ERROR_SHARE * math.sqrt(float(self.dw.sum())) / bnorm))
         self.max_iter = int(max_iter)
         self.starts = [np.asarray(s, dtype=np.float64).reshape(self.grid.shape)
                        for s in (starts if starts is not None else [self.y])]
@@ -403,7 +416,7 @@ class GreyModel(ChainModel):
         shape = self.grid.shape
         # The solver works in single precision when both tolerances are far above
         # its resolution (6e-8): half the memory traffic and twice the vector width.
-        ft = np.float32 if min(self.tol, self.sample_tol) >= SINGLE_PRECISION_TOL else np.float64
+        ft = np.float32 if min(self.mean_tol, self.sample_tol) >= SINGLE_PRECISION_TOL else np.float64
         self.solver_dtype = np.dtype(ft)
         self._dw_s = self.dw.astype(ft)
         self.w = np.zeros((n, *shape), ft)
@@ -433,14 +446,14 @@ class GreyModel(ChainModel):
 
         ``rhs`` has shape ``(R, Z, H, W)`` with ``R <= 2`` and ``x0`` holds ``R``
         starting images (or scalars); ``tols`` gives each system's relative
-        residual (default ``tol``).  Returns the
+        residual (default :attr:`mean_tol`).  Returns the
         solutions (a view into a work buffer) and the iterations made.
         """
         R = rhs.shape[0]
         X, Rr, P, Qp, Zr = (self._buf[k][:R] for k in ("x", "r", "p", "q", "z"))
         for k in range(R):
             X[k] = x0[k]
-        tols = np.full(R, self.tol) if tols is None else np.asarray(tols, dtype=np.float64)
+        tols = np.full(R, self.mean_tol) if tols is None else np.asarray(tols, dtype=np.float64)
         B = np.ascontiguousarray(rhs, dtype=self.solver_dtype)
         it, worst = kernels.gmrf_cg(X, B, self.w, self.offsets, self._dw_s, self._minv, tols,
                                     self.max_iter, Rr, P, Qp, Zr)
@@ -480,7 +493,7 @@ class GreyModel(ChainModel):
             kernels.gmrf_perturbation(self.w, self.offsets, self._dw_s,
                                       kernels.derive_key(np.uint64(key), kernels._GREY_NOISE_SALT),
                                       math.sqrt(temperature), self._rhs[1], self._pbuf)
-            X, it = self.solve(self._rhs, (state.mu, 0.0), (self.tol, self.sample_tol))
+            X, it = self.solve(self._rhs, (state.mu, 0.0), (self.mean_tol, self.sample_tol))
             state.mu[...] = X[0]
             np.add(X[0], X[1], out=state.x)
         else:
@@ -554,4 +567,4 @@ class GreyModel(ChainModel):
         return X[0].astype(np.float64)
 
     def describe(self):
-        return {**self.prior.describe(), "cg_tol": self.tol, "cg_sample_tol": self.sample_tol}
+        return {**self.prior.describe(), "cg_tol": self.tol, "cg_mean_tol": self.mean_tol, "cg_sample_tol": self.sample_tol}
