@@ -621,43 +621,23 @@ def _shifted_add(out, src, lo, hi, s):
 
 
 @njit(parallel=True, cache=True)
-def gmrf_matvec(x, w, offsets, dw, out, rows):
-    """``out = Q x`` with ``Q = diag(dw) + sum_o D_o^T diag(w_o) D_o``, for a batch of images.
+def gmrf_matvec(x, w, offsets, dw, curv, out, rows):
+    """``out = Q x`` with ``Q = diag(dw) + sum_o D_o^T diag(w_o) D_o + curv C``, for a batch of images.
 
-    ``x`` and ``out`` have shape ``(R, Z, H, W)`` (``R`` right-hand sides sharing
-    the operator); ``rows[r, k]`` receives the partial sum of ``x * out`` of row
-    ``k`` of image ``r`` (for the conjugate-gradient step length).
+    ``C = Dxx^T Dxx + Dyy^T Dyy`` is the in-plane second-difference term (see
+    :func:`_curv_row`; absent when ``curv = 0``).  ``x`` and ``out`` have shape
+    ``(R, Z, H, W)`` (``R`` right-hand sides sharing the operator); ``rows[r, k]``
+    receives the partial sum of ``x * out`` of row ``k`` of image ``r`` (for
+    the conjugate-gradient step length).
     """
     R, Z, H, W = x.shape
-    n = offsets.shape[0]
     for k in prange(Z * H):
         z = k // H
         i = k - z * H
         for r in range(R):
-            xr = x[r]
             orow = out[r, z, i]
-            xrow = xr[z, i]
-            drow = dw[z, i]
-            for j in range(W):
-                orow[j] = drow[j] * xrow[j]
-            for o in range(n):
-                dz = offsets[o, 0]
-                di = offsets[o, 1]
-                dj = offsets[o, 2]
-                zf = z + dz
-                i_f = i + di
-                if 0 <= zf < Z and 0 <= i_f < H:  # forward clique (p, p + o)
-                    wrow = w[o, z, i]
-                    nrow = xr[zf, i_f]
-                    lo, hi = _span(dj, W)
-                    _clique_rows(orow, wrow, xrow, nrow, lo, hi, 0, dj)
-                zb = z - dz
-                ib = i - di
-                if 0 <= zb < Z and 0 <= ib < H:  # backward clique (p - o, p)
-                    wrow = w[o, zb, ib]
-                    nrow = xr[zb, ib]
-                    lo, hi = _span(-dj, W)
-                    _clique_rows(orow, wrow, xrow, nrow, lo, hi, -dj, -dj)
+            _q_row(x[r], w, offsets, dw, curv, z, i, orow)
+            xrow = x[r, z, i]
             acc = 0.0
             for j in range(W):
                 acc += xrow[j] * orow[j]
@@ -665,8 +645,9 @@ def gmrf_matvec(x, w, offsets, dw, out, rows):
 
 
 @njit(parallel=True, cache=True)
-def gmrf_diagonal(w, offsets, dw, out):
-    """Diagonal of ``Q`` (data precision plus the weights of every clique touching a pixel)."""
+def gmrf_diagonal(w, offsets, dw, curv, out):
+    """Diagonal of ``Q`` (data precision, the weights of every clique touching a pixel
+    and ``curv`` times the squared coefficients of its second-difference triples)."""
     Z, H, W = dw.shape
     n = offsets.shape[0]
     for k in prange(Z * H):
@@ -690,6 +671,15 @@ def gmrf_diagonal(w, offsets, dw, out):
                 wrow = w[o, zb, ib]
                 lo, hi = _span(-dj, W)
                 _shifted_add(orow, wrow, lo, hi, -dj)
+        if curv > 0.0:
+            for j in range(W - 2):
+                orow[j] += curv
+                orow[j + 1] += 4.0 * curv
+                orow[j + 2] += curv
+            for c in range(max(0, i - 2), min(i, H - 3) + 1):
+                a = 4.0 if c == i - 1 else 1.0
+                for j in range(W):
+                    orow[j] += a * curv
 
 
 #: ``comp`` value of a clique that leaves the lattice (no weight).
@@ -1053,21 +1043,94 @@ def _gather_perturbation(offsets, dw, buf, scale, out):
             orow[j] *= scale
 
 
-def gmrf_perturbation(w, offsets, dw, key, scale, out, buf):
-    """``out = scale * (diag(dw)^(1/2) e1 + sum_o D_o^T diag(w_o)^(1/2) e2_o)``, e1, e2 standard normal.
+@njit(parallel=True, cache=True)
+def _curv_normals(key, first, cbuf):
+    """Standard normals of the second-difference triples: ``cbuf[0]`` along rows
+    (triples starting at ``j < W - 2``), ``cbuf[1]`` down columns (``i < H - 2``);
+    counters ``first + t N + p``; 0 where no triple starts."""
+    T, Z, H, W = cbuf.shape
+    N = Z * H * W
+    for k in prange(T * Z * H):
+        t = k // (Z * H)
+        r = k - t * Z * H
+        z = r // H
+        i = r - z * H
+        row = cbuf[t, z, i]
+        if t == 0:
+            hi = max(W - 2, 0)
+        else:
+            hi = W if i < H - 2 else 0
+        for j in range(hi, W):
+            row[j] = 0.0
+        fill_normals(key, first + t * N + (z * H + i) * W, row, 0, hi)
+
+
+@njit(parallel=True, cache=True)
+def _gather_curv(cbuf, a, out):
+    """``out += a (Dxx^T e_x + Dyy^T e_y)`` for the triple normals of :func:`_curv_normals`."""
+    Z, H, W = out.shape
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        orow = out[z, i]
+        ex = cbuf[0, z, i]
+        for j in range(W - 2):
+            e = a * ex[j]
+            orow[j] += e
+            orow[j + 1] -= 2.0 * e
+            orow[j + 2] += e
+        for c in range(max(0, i - 2), min(i, H - 3) + 1):
+            coef = a * (1.0 if c == i else (-2.0 if c == i - 1 else 1.0))
+            ey = cbuf[1, z, c]
+            for j in range(W):
+                orow[j] += coef * ey[j]
+
+
+def gmrf_perturbation(w, offsets, dw, key, scale, out, buf, curv=0.0, cbuf=None):
+    """``out = scale * (diag(dw)^(1/2) e1 + sum_o D_o^T diag(w_o)^(1/2) e2_o + curv^(1/2) (Dxx^T e3 + Dyy^T e4))``.
 
     Its covariance is ``scale^2 Q``: solving ``Q e = out`` gives a draw of
     ``N(0, scale^2 Q^-1)`` (perturbation-optimisation, Papandreou & Yuille 2010).
     Each clique's normal (counter ``o N + p``) is drawn once into ``buf`` (shape
     of ``w``) and then gathered at both of its ends; the data normal of pixel
-    ``p`` has counter ``n N + p``.
+    ``p`` has counter ``n N + p``; with ``curv > 0`` the second-difference
+    triples' normals (counters ``(n + 1) N + p`` along rows and ``(n + 2) N + p``
+    down columns) go through ``cbuf`` (shape ``(2, Z, H, W)``).
     """
     _clique_normals(w, offsets, dw, np.uint64(key), buf, out)
     _gather_perturbation(offsets, dw, buf, float(scale), out)
+    if curv > 0:
+        N = out.size
+        _curv_normals(np.uint64(key), (offsets.shape[0] + 1) * N, cbuf)
+        _gather_curv(cbuf, float(scale) * math.sqrt(curv), out)
 
 
 @njit(inline="always", cache=True)
-def _q_row(src, w, offsets, dw, z, i, out):
+def _curv_row(src, z, i, curv, out):
+    """Row ``(z, i)`` of ``curv (Dxx^T Dxx + Dyy^T Dyy) src`` added to ``out``.
+
+    ``Dxx`` and ``Dyy`` take the in-plane second differences
+    ``x[p] - 2 x[p + e] + x[p + 2 e]`` of every triple inside the plane (free
+    boundary), so the interior stencil is ``[1, -4, 6, -4, 1]`` along each axis.
+    """
+    Z, H, W = src.shape
+    xrow = src[z, i]
+    for j in range(W - 2):  # along the row: scatter each triple's difference
+        d = curv * (xrow[j] - 2.0 * xrow[j + 1] + xrow[j + 2])
+        out[j] += d
+        out[j + 1] -= 2.0 * d
+        out[j + 2] += d
+    for c in range(max(0, i - 2), min(i, H - 3) + 1):  # down the columns: triples c, c+1, c+2
+        a = curv * (1.0 if c == i else (-2.0 if c == i - 1 else 1.0))
+        r0 = src[z, c]
+        r1 = src[z, c + 1]
+        r2 = src[z, c + 2]
+        for j in range(W):
+            out[j] += a * (r0[j] - 2.0 * r1[j] + r2[j])
+
+
+@njit(inline="always", cache=True)
+def _q_row(src, w, offsets, dw, curv, z, i, out):
     """Row ``(z, i)`` of ``Q src`` into ``out`` (see :func:`gmrf_matvec`)."""
     Z, H, W = src.shape
     n = offsets.shape[0]
@@ -1093,10 +1156,12 @@ def _q_row(src, w, offsets, dw, z, i, out):
             nrow = src[zb, ib]
             lo, hi = _span(-dj, W)
             _clique_rows(out, wrow, xrow, nrow, lo, hi, -dj, -dj)
+    if curv > 0.0:
+        _curv_row(src, z, i, curv, out)
 
 
 @njit(parallel=True, cache=True)
-def _cg_start(X, B, w, offsets, dw, minv, Rr, P, Q, Zr, rows):
+def _cg_start(X, B, w, offsets, dw, curv, minv, Rr, P, Q, Zr, rows):
     """``r = b - Q x``, ``z = M^-1 r``, ``p = z``, ``q = Q p``; row sums of r z, r r, b b, p q."""
     S, Z, H, W = X.shape
     for k in prange(Z * H):
@@ -1105,7 +1170,7 @@ def _cg_start(X, B, w, offsets, dw, minv, Rr, P, Q, Zr, rows):
         tmp = np.empty(W, X.dtype)
         mrow = minv[z, i]
         for s in range(S):
-            _q_row(X[s], w, offsets, dw, z, i, tmp)
+            _q_row(X[s], w, offsets, dw, curv, z, i, tmp)
             rrow = Rr[s, z, i]
             zrow = Zr[s, z, i]
             brow = B[s, z, i]
@@ -1130,7 +1195,7 @@ def _cg_start(X, B, w, offsets, dw, minv, Rr, P, Q, Zr, rows):
         i = k - z * H
         for s in range(S):
             qrow = Q[s, z, i]
-            _q_row(P[s], w, offsets, dw, z, i, qrow)
+            _q_row(P[s], w, offsets, dw, curv, z, i, qrow)
             prow = P[s, z, i]
             acc = 0.0
             for j in range(W):
@@ -1170,7 +1235,7 @@ def _cg_update(X, Rr, P, Q, Zr, minv, alpha, rows):
 
 
 @njit(parallel=True, cache=True)
-def _cg_direction(w, offsets, dw, P, Q, Zr, beta, active, rows):
+def _cg_direction(w, offsets, dw, curv, P, Q, Zr, beta, active, rows):
     """``p = z + b p`` and ``q = Q z + b q`` (so ``q = Q p`` with one product); row sums of p q."""
     S, Z, H, W = P.shape
     for k in prange(Z * H):
@@ -1181,7 +1246,7 @@ def _cg_direction(w, offsets, dw, P, Q, Zr, beta, active, rows):
             if not active[s]:
                 continue
             b = beta[s]
-            _q_row(Zr[s], w, offsets, dw, z, i, tmp)
+            _q_row(Zr[s], w, offsets, dw, curv, z, i, tmp)
             prow = P[s, z, i]
             qrow = Q[s, z, i]
             zrow = Zr[s, z, i]
@@ -1196,7 +1261,7 @@ def _cg_direction(w, offsets, dw, P, Q, Zr, beta, active, rows):
 
 
 @njit(cache=True)
-def gmrf_cg(X, B, w, offsets, dw, minv, tols, max_iter, Rr, P, Q, Zr):
+def gmrf_cg(X, B, w, offsets, dw, curv, minv, tols, max_iter, Rr, P, Q, Zr):
     """Jacobi-preconditioned conjugate gradients for ``Q X[s] = B[s]``, all ``s`` at once.
 
     ``X`` holds the starting points and receives the solutions; system ``s``
@@ -1206,7 +1271,7 @@ def gmrf_cg(X, B, w, offsets, dw, minv, tols, max_iter, Rr, P, Q, Zr):
     S, Z, H, W = X.shape
     nr = Z * H
     rows = np.zeros((4, S, nr))
-    _cg_start(X, B, w, offsets, dw, minv, Rr, P, Q, Zr, rows)
+    _cg_start(X, B, w, offsets, dw, curv, minv, Rr, P, Q, Zr, rows)
     rz = np.zeros(S)
     rr = np.zeros(S)
     bb = np.zeros(S)
@@ -1258,7 +1323,7 @@ def gmrf_cg(X, B, w, offsets, dw, minv, tols, max_iter, Rr, P, Q, Zr):
             break
         for s in range(S):
             beta_s[s] = beta[s]
-        _cg_direction(w, offsets, dw, P, Q, Zr, beta_s, active, rows)
+        _cg_direction(w, offsets, dw, curv, P, Q, Zr, beta_s, active, rows)
         for s in range(S):
             if active[s]:
                 a = 0.0

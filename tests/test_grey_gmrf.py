@@ -36,23 +36,44 @@ def difference_matrices(shape, offsets):
     return out
 
 
+def second_difference_matrix(shape):
+    """Sparse ``[Dxx; Dyy]``: rows ``x[p] - 2 x[p + e] + x[p + 2 e]`` of every in-plane triple."""
+    Z, H, W = shape
+    eye = sp.identity
+
+    def d2(n):
+        return sp.diags([1.0, -2.0, 1.0], [0, 1, 2], shape=(max(n - 2, 0), n))
+
+    dxx = sp.kron(eye(Z * H), d2(W))
+    dyy = sp.kron(eye(Z), sp.kron(d2(H), eye(W)))
+    return sp.vstack([dxx, dyy]).tocsr()
+
+
 def sparse_precision(model, weights):
-    """``Q`` assembled from the clique weights the model uses, plus its data precision."""
+    """``Q`` assembled from the clique weights the model uses, plus its data precision
+    and its second-difference term (built independently with scipy)."""
     Q = sp.diags(model.dw.ravel())
     for (ok, D), w in zip(difference_matrices(model.grid.shape, model.offsets), weights):
         Q = Q + D.T @ sp.diags(w[ok]) @ D
+    if model.curv:
+        C = second_difference_matrix(model.grid.shape)
+        Q = Q + model.curv * (C.T @ C)
     return Q.tocsc()
 
 
-@pytest.mark.parametrize("shape, neighbourhood", [((1, 12, 13), "20"), ((3, 7, 9), "8")])
+@pytest.mark.parametrize("shape, neighbourhood", [((1, 12, 13), "20"), ((3, 7, 9), "8"),
+                                                  ((1, 3, 5), "4")])
 @pytest.mark.parametrize("tol, dtype, rtol", [(1e-9, np.float64, 1e-12), (1e-3, np.float32, 2e-6)])
-def test_operator_matches_sparse_matrix(shape, neighbourhood, tol, dtype, rtol):
-    """Matrix-free ``Q x`` and ``diag Q`` equal the assembled sparse matrix (round-off only).
+@pytest.mark.parametrize("curvature", [0.0, 2.5])
+def test_operator_matches_sparse_matrix(shape, neighbourhood, tol, dtype, rtol, curvature):
+    """Matrix-free ``Q x`` and ``diag Q`` equal the assembled sparse matrix (round-off only),
+    with and without the second-difference term.
 
     ``apply`` works in float64 always; the solver's diagonal is float32 for the
     usual tolerances (rounding of about 20 float32 terms: within 2e-6 relative)."""
     gen = np.random.default_rng(11)
-    prior = GSMPrior.quadratic(1.0, neighbourhood=neighbourhood, strength_z=0.5)
+    prior = GSMPrior.quadratic(1.0, neighbourhood=neighbourhood,
+                               strength_z=0.5).with_curvature(curvature)
     m = GreyModel(gen.normal(size=shape), variance=gen.uniform(0.5, 2, size=shape), prior=prior,
                   tol=tol)
     assert m.solver_dtype == dtype
@@ -153,13 +174,13 @@ def test_normal_variates_moments():
     assert abs(np.mean(z**4) / z.var() ** 2 - 3) < 0.08
 
 
-@pytest.fixture(scope="module")
-def gmrf_case():
+@pytest.fixture(scope="module", params=[0.0, 4.0], ids=["pairwise", "curvature"])
+def gmrf_case(request):
     gen = np.random.default_rng(2024)
     H = W = 32
     sigma2, lam = 0.5, 3.0
     y = gen.normal(size=(H, W))
-    prior = GSMPrior.quadratic(lam, neighbourhood="8")
+    prior = GSMPrior.quadratic(lam, neighbourhood="8").with_curvature(request.param)
     model = GreyModel(y, variance=sigma2, prior=prior, tol=1e-9)
     Q = sparse_precision(model, np.broadcast_to(lam, model.w.shape))
     mean = sla.spsolve(Q, y.ravel() / sigma2)
@@ -250,11 +271,15 @@ def _energy_reference(model, x):
         d2 = ((b - a) ** 2).ravel()[:, None]
         lp = model.logamp[o][None, :] - 0.5 * model.strength[o] * model.prec[o][None, :] * d2
         e -= np.sum(logsumexp(lp, axis=1))
+    if model.curv:  # the second-difference term through scipy's sparse matrix
+        C = second_difference_matrix(x.shape)
+        e += 0.5 * model.curv * float(np.sum((C @ x.ravel()) ** 2))
     return float(e)
 
 
-@pytest.mark.parametrize("temperature,spread", [(1.0, 1.0), (0.3, 1.0), (1.0, 40.0)])
-def test_energy_from_the_scale_draw_equals_direct_energy(temperature, spread):
+@pytest.mark.parametrize("temperature,spread,curvature", [(1.0, 1.0, 0.0), (0.3, 1.0, 0.0),
+                                                          (1.0, 40.0, 0.0), (1.0, 1.0, 3.0)])
+def test_energy_from_the_scale_draw_equals_direct_energy(temperature, spread, curvature):
     """The energy a sweep gets from its scale-draw pass (at T = 1 and while annealing, when the
     draw itself is tempered) equals the energy written out here with scipy's logsumexp.
 
@@ -265,7 +290,7 @@ def test_energy_from_the_scale_draw_equals_direct_energy(temperature, spread):
     gen = np.random.default_rng(12)
     y = spread * gen.normal(size=(2, 21, 19))
     m = GreyModel(y, variance=gen.uniform(0.2, 1.0, y.shape),
-                  prior=GSMPrior.load().with_strength(1.3, 0.7))
+                  prior=GSMPrior.load().with_strength(1.3, 0.7).with_curvature(curvature))
     assert kernels.ladder4(m.prec)
     st = m.start(0, 1)
     for k in range(2):

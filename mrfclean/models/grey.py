@@ -120,6 +120,11 @@ class GSMPrior:
     strength_z : float
         Extra factor for the z clique ``(1, 0, 0)`` of a stack, which uses the
         potential of the first group.
+    curvature : float
+        ``kappa``: weight of a quadratic term on the in-plane second differences,
+        ``kappa / 2 sum (x[p] - 2 x[p + e] + x[p + 2 e])^2`` along rows and
+        columns (0 = none).  It favours smooth ramps over flat steps; the
+        cleaner chooses it per image (see :func:`mrfclean.fit.grey.choose_curvature`).
     units : float
         Intensity span the potentials were learned for (differences are
         measured in units of the image's range divided by this).
@@ -128,10 +133,11 @@ class GSMPrior:
     groups: tuple
     strength: float = 1.0
     strength_z: float = 1.0
+    curvature: float = 0.0
     meta: dict = field(default_factory=dict, compare=False)
 
     def __post_init__(self):
-        for name in ("strength", "strength_z"):
+        for name in ("strength", "strength_z", "curvature"):
             v = getattr(self, name)
             if not (math.isfinite(v) and v >= 0):
                 raise ValueError(f"{name} must be a non-negative finite number, got {v!r}")
@@ -156,8 +162,8 @@ class GSMPrior:
         groups = tuple(PriorGroup(g["name"], tuple(tuple(int(v) for v in o) for o in g["offsets"]),
                                   tuple(float(a) for a in g["logamp"]), prec)
                        for g in d["groups"])
-        meta = {k: v for k, v in d.items() if k not in ("groups", "precisions")}
-        return cls(groups, meta=meta)
+        meta = {k: v for k, v in d.items() if k not in ("groups", "precisions", "curvature")}
+        return cls(groups, curvature=float(d.get("curvature", 0.0)), meta=meta)
 
     @classmethod
     def load(cls, path=None):
@@ -173,11 +179,16 @@ class GSMPrior:
         return {"format": "mrfclean-gsm-prior/1", **self.meta,
                 "precisions": list(self.groups[0].prec),
                 "groups": [{"name": g.name, "offsets": [list(o) for o in g.offsets],
-                            "logamp": list(g.logamp)} for g in self.groups]}
+                            "logamp": list(g.logamp)} for g in self.groups],
+                **({"curvature": self.curvature} if self.curvature else {})}
 
     def with_strength(self, strength, strength_z=None):
         return GSMPrior(self.groups, float(strength),
-                        self.strength_z if strength_z is None else float(strength_z), self.meta)
+                        self.strength_z if strength_z is None else float(strength_z),
+                        self.curvature, self.meta)
+
+    def with_curvature(self, curvature):
+        return GSMPrior(self.groups, self.strength, self.strength_z, float(curvature), self.meta)
 
     # --- kernel arrays -------------------------------------------------------------
     def arrays(self, planes: int):
@@ -208,7 +219,7 @@ class GSMPrior:
 
     def describe(self):
         return {"prior": "gsm", "strength": float(self.strength),
-                "strength_z": float(self.strength_z),
+                "strength_z": float(self.strength_z), "curvature": float(self.curvature),
                 "offsets": [list(o) for g in self.groups for o in g.offsets],
                 "scales": len(self.groups[0].prec), "prior_source": self.meta.get("source", "given")}
 
@@ -400,6 +411,7 @@ class GreyModel(ChainModel):
         self.prior = prior
         Z = self.grid.shape[0]
         self.offsets, self.logamp, self.prec, self.strength = prior.arrays(Z)
+        self.curv = float(prior.curvature)
         self.tol = float(tol)
         self.sample_tol = self.tol if sample_tol is None else float(sample_tol)
         for name, t in (("tol", self.tol), ("sample_tol", self.sample_tol)):
@@ -426,11 +438,12 @@ class GreyModel(ChainModel):
         self._rhs = np.zeros((2, *shape), ft)  # [b, perturbation] of a temperature > 0 update
         self._rhs[0] = self.b
         self._pbuf = None  # clique normals of a perturbation, allocated at the first draw
+        self._cbuf = None  # and those of the second-difference triples
         self.stats = SolverStats()
 
     # --- linear algebra -------------------------------------------------------------
     def _set_operator(self):
-        kernels.gmrf_diagonal(self.w, self.offsets, self._dw_s, self._diag)
+        kernels.gmrf_diagonal(self.w, self.offsets, self._dw_s, self.curv, self._diag)
         np.divide(1.0, self._diag, out=self._minv)
 
     def apply(self, x, weights=None):
@@ -438,7 +451,7 @@ class GreyModel(ChainModel):
         w = np.ascontiguousarray(self.w if weights is None else weights, dtype=np.float64)
         xs = np.ascontiguousarray(np.asarray(x, dtype=np.float64).reshape(1, *self.grid.shape))
         out = np.empty_like(xs)
-        kernels.gmrf_matvec(xs, w, self.offsets, self.dw, out, np.empty((1, self.grid.shape[0] * self.grid.shape[1])))
+        kernels.gmrf_matvec(xs, w, self.offsets, self.dw, self.curv, out, np.empty((1, self.grid.shape[0] * self.grid.shape[1])))
         return out[0]
 
     def solve(self, rhs, x0, tols=None):
@@ -455,7 +468,7 @@ class GreyModel(ChainModel):
             X[k] = x0[k]
         tols = np.full(R, self.mean_tol) if tols is None else np.asarray(tols, dtype=np.float64)
         B = np.ascontiguousarray(rhs, dtype=self.solver_dtype)
-        it, worst = kernels.gmrf_cg(X, B, self.w, self.offsets, self._dw_s, self._minv, tols,
+        it, worst = kernels.gmrf_cg(X, B, self.w, self.offsets, self._dw_s, self.curv, self._minv, tols,
                                     self.max_iter, Rr, P, Qp, Zr)
         self.stats.solves += 1
         self.stats.iterations += int(it)
@@ -472,7 +485,15 @@ class GreyModel(ChainModel):
             state.comp = np.empty(self.w.shape, np.uint8)
         state.energy = float(kernels.gsm_draw_components(
             state.x, self.y, self.dw, self.offsets, self.logamp, self.prec, self.strength,
-            float(temperature), np.uint64(key), state.comp))
+            float(temperature), np.uint64(key), state.comp)) + self._curv_energy(state.x)
+
+    def _curv_energy(self, x):
+        """``kappa / 2`` times the summed squared in-plane second differences of ``x``."""
+        if self.curv == 0:
+            return 0.0
+        dxx = x[:, :, :-2] - 2.0 * x[:, :, 1:-1] + x[:, :, 2:]
+        dyy = x[:, :-2, :] - 2.0 * x[:, 1:-1, :] + x[:, 2:, :]
+        return 0.5 * self.curv * float(np.sum(dxx * dxx) + np.sum(dyy * dyy))
 
     def sweep(self, state, temperature, key):
         """Image | scales (one exact Gaussian block), then scales | image (categorical draws).
@@ -490,9 +511,12 @@ class GreyModel(ChainModel):
         if temperature > 0:
             if self._pbuf is None:
                 self._pbuf = np.empty_like(self.w)
+                if self.curv > 0:
+                    self._cbuf = np.empty((2, *self.grid.shape), self.solver_dtype)
             kernels.gmrf_perturbation(self.w, self.offsets, self._dw_s,
                                       kernels.derive_key(np.uint64(key), kernels._GREY_NOISE_SALT),
-                                      math.sqrt(temperature), self._rhs[1], self._pbuf)
+                                      math.sqrt(temperature), self._rhs[1], self._pbuf,
+                                      self.curv, self._cbuf)
             X, it = self.solve(self._rhs, (state.mu, 0.0), (self.mean_tol, self.sample_tol))
             state.mu[...] = X[0]
             np.add(X[0], X[1], out=state.x)
@@ -548,8 +572,9 @@ class GreyModel(ChainModel):
         return np.ascontiguousarray(a.reshape(self.grid.shape))
 
     def prior_energy_of(self, x) -> float:
-        return float(kernels.gsm_prior_energy(self._as_image(x), self.offsets, self.logamp,
-                                              self.prec, self.strength))
+        x = self._as_image(x)
+        return float(kernels.gsm_prior_energy(x, self.offsets, self.logamp, self.prec,
+                                              self.strength)) + self._curv_energy(x)
 
     def data_energy_of(self, x) -> float:
         r = self._as_image(x) - self.y
