@@ -768,7 +768,7 @@ def _describe(entry, outroot) -> str:
 # CSV summary
 # ---------------------------------------------------------------------------
 SUMMARY_COLUMNS = ("relpath", "status", "kind", "method", "coupling", "flip_rate", "sigma",
-                   "strength", "rhat", "chains_agree", "final_energy", "psnr", "ssim",
+                   "strength", "curvature", "rhat", "chains_agree", "final_energy", "psnr", "ssim",
                    "error_rate", "dice", "iou", "seconds", "output", "error")
 
 
@@ -781,7 +781,7 @@ def summary_rows(entries) -> list[dict]:
                "method": e.get("method"), "seconds": e.get("seconds"),
                "output": (e.get("outputs") or {}).get("image"),
                "error": e.get("error") or e.get("metrics_error")}
-        for k in ("coupling", "flip_rate", "sigma", "strength"):
+        for k in ("coupling", "flip_rate", "sigma", "strength", "curvature"):
             v = p.get(k)
             row[k] = v if isinstance(v, (int, float)) else None
         for k in ("rhat", "chains_agree", "final_energy"):

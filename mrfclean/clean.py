@@ -53,6 +53,9 @@ class Settings:
         Grey, Poisson-Gaussian noise: ``Var(y | x) = gain * x + read_variance``.
     strength : float or "auto"
         Grey: multiplier of the learned prior's precision.
+    curvature : float or "auto"
+        Grey: weight of the second-difference (smooth-ramp) term; ``"auto"``:
+        chosen by SURE, 0 when it does not help.
     schedule, t_start, t_end
         Annealing schedule for MAP.
     sweeps, burn_in, samples, chains : int or None
@@ -86,6 +89,7 @@ class Settings:
     gain: object = "auto"
     read_variance: object = "auto"
     strength: object = "auto"
+    curvature: object = "auto"
     schedule: str = "geometric"
     t_start: float = 3.0
     t_end: float = 0.05
@@ -190,7 +194,7 @@ def clean(image, *, settings: Settings | None = None, rng=None, progress=False,
     return clean_grey(
         image, method=method, noise=s.noise,
         sigma=s.sigma, gain=s.gain, read_variance=s.read_variance, strength=s.strength,
-        schedule=make_schedule(s.schedule, start=s.t_start, end=s.t_end), sweeps=s.sweeps,
+        curvature=s.curvature, schedule=make_schedule(s.schedule, start=s.t_start, end=s.t_end), sweeps=s.sweeps,
         burn_in=s.burn_in, samples=s.samples, chains=s.chains, rng=rng, progress=progress)
 
 

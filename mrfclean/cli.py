@@ -127,6 +127,9 @@ def add_model_options(p):
                    help="grey, Poisson-Gaussian noise: the signal-independent variance B")
     m.add_argument("--strength", type=_auto_or_float,
                    help="grey: prior strength multiplier (default: chosen by SURE)")
+    m.add_argument("--curvature", type=_auto_or_float,
+                   help="grey: weight of the smooth-ramp (second-difference) term "
+                        "(default: chosen by SURE, 0 when it does not help)")
     m.add_argument("--boundary", choices=("free", "periodic"), help="lattice boundary (default free)")
     m.add_argument("--stack", choices=("volume", "planes"),
                    help="a stack of planes is one 3-D volume, z coupling from the voxel size "

@@ -15,7 +15,8 @@ from scipy import ndimage, special
 
 from . import levels as lv
 from .estimates import CleanResult, Diagnostics, anneal, record_posterior, sample_posterior
-from .fit.grey import FLATTEST_SHARE, choose_strength, estimate_poisson_gaussian, estimate_sigma
+from .fit.grey import (FLATTEST_SHARE, choose_curvature, choose_strength, estimate_poisson_gaussian,
+                       estimate_sigma)
 from .lattice import Grid
 from .models.grey import GaussianNoise, GreyModel, GSMPrior, PoissonGaussianNoise
 from .sampler import to_seed
@@ -54,6 +55,12 @@ AUTO_PG_SIGNIFICANCE = 4.0
 #: images at sigma 0.05, 0.1 and 0.2 (scripts/fit_strength_guess.py; residual sd
 #: 0.84 in log strength).  A start near the answer saves risk evaluations.
 STRENGTH_GUESS = (-4.567, -1.364)
+#: First weight of the second-difference term tried by SURE, times the noise
+#: precision (prototype runs put the best weight at 0.25-2.5 over sigma^2 on
+#: smooth images; on textured ones none helps).
+CURVATURE_GUESS = 2.0
+#: ... tried at this share of the strength chosen without it.
+CURVATURE_STRENGTH = 1 / 3
 
 
 def strength_guess(noise_sd):
@@ -134,7 +141,8 @@ def check_options(shape, *, method, chains):
 
 
 def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
-               read_variance="auto", strength="auto", prior: GSMPrior | str | None = None,
+               read_variance="auto", strength="auto", curvature="auto",
+               prior: GSMPrior | str | None = None,
                schedule: Schedule | None = None, sweeps=None, burn_in=None, samples=None,
                chains=DEFAULT_CHAINS, level=DEFAULT_LEVEL, tol=DEFAULT_TOL, rng=None,
                progress=False) -> CleanResult:
@@ -226,7 +234,7 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
     seed = to_seed(rng)
     y = lv.to_work(a).astype(np.float64).reshape(grid.shape)
     setup = grey_setup(y, noise=noise, sigma=sigma, gain=gain, read_variance=read_variance,
-                       strength=strength, prior=prior, seed=seed, tol=tol)
+                       strength=strength, curvature=curvature, prior=prior, seed=seed, tol=tol)
     block = sample_block(y, setup, method=method, schedule=schedule, sweeps=sweeps,
                          burn_in=burn_in, samples=samples, chains=chains, tol=tol, seed=seed,
                          progress=progress)
@@ -257,6 +265,7 @@ class GreySetup:
     estimated: list
     sure_table: list | None = None
     noise_curve: dict | None = None
+    curvature_table: list | None = None
 
     def observed(self, y, smooth=None):
         """``(u, var_u)``: a block of physical intensities in the prior's units and its noise
@@ -270,20 +279,22 @@ class GreySetup:
              "intensity_span": self.span, "estimated": list(self.estimated)}
         if self.sure_table is not None:
             d["sure"] = self.sure_table
+        if self.curvature_table is not None:
+            d["sure_curvature"] = self.curvature_table
         if self.noise_curve is not None:
             d["noise_curve"] = self.noise_curve
         return d
 
 
 def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="auto",
-               strength="auto", prior=None, seed=0, tol=DEFAULT_TOL) -> GreySetup:
+               strength="auto", curvature="auto", prior=None, seed=0, tol=DEFAULT_TOL) -> GreySetup:
     """Noise model, intensity frame and prior strength for an image, given or estimated.
 
     Parameters
     ----------
     y : ndarray, shape (Z, H, W)
         Physical intensities (float64).
-    noise, sigma, gain, read_variance, strength, prior, tol
+    noise, sigma, gain, read_variance, strength, curvature, prior, tol
         As for :func:`clean_grey`; everything left ``"auto"`` is estimated
         from ``y`` and named in ``estimated``.
     seed : int
@@ -344,16 +355,33 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     else:
         base = GSMPrior.load(prior)
     setup = GreySetup(term, low, span, base, estimated, None, noise_curve)
+    u, var_u = setup.observed(y, pilot)
+    sseed = seed ^ 0x3C3C3C3C
+    if curvature != "auto":
+        base = base.with_curvature(_number("curvature", curvature, positive=False))
     if strength == "auto":
-        u, var_u = setup.observed(y, pilot)
         # the guess was fitted for the shipped prior; another prior starts at 0.5
         start = strength_guess(float(np.sqrt(np.mean(var_u)))) if prior is None else 0.5
-        fit = choose_strength(u, var_u, base, start=start, seed=seed ^ 0x3C3C3C3C, tol=tol)
+        fit = choose_strength(u, var_u, base, start=start, seed=sseed, tol=tol)
         lam = fit.strength
         setup.sure_table = fit.table
         estimated.append("strength")
     else:
         lam = _number("strength", strength, positive=False)
+    if curvature == "auto":
+        # the risk at the chosen strength, when the walk computed it there
+        none_risk = next((r for v, r in (setup.sure_table or []) if v == lam), None)
+        cfit = choose_curvature(u, var_u, base.with_strength(lam), seed=sseed, tol=tol,
+                                start=CURVATURE_GUESS / float(np.mean(var_u)), none_risk=none_risk,
+                                strength_factor=CURVATURE_STRENGTH if strength == "auto" else 1.0)
+        setup.curvature_table = cfit.table
+        estimated.append("curvature")
+        if cfit.curvature > 0:
+            base = base.with_curvature(cfit.curvature)
+            if strength == "auto":  # the term takes over part of the smoothing: walk again
+                fit = choose_strength(u, var_u, base, start=cfit.strength, seed=sseed, tol=tol)
+                lam = fit.strength
+                setup.sure_table = fit.table
     setup.prior = base.with_strength(lam)
     return setup
 

@@ -252,7 +252,7 @@ def _image_card(entry, outdir: Path) -> str:
         figs.append(_img(energy_figure(trace), "energy trace", pixelated=False))
     d, p, m = entry.get("diagnostics") or {}, entry.get("params") or {}, entry.get("metrics") or {}
     facts = {"kind": entry.get("kind"), "estimate": str(entry.get("method", "")).upper()}
-    for k in ("coupling", "flip_rate", "sigma", "strength"):
+    for k in ("coupling", "flip_rate", "sigma", "strength", "curvature"):
         if isinstance(p.get(k), (int, float)):
             facts[k] = p[k]
     facts.update({"R-hat": d.get("rhat"), "final energy": d.get("final_energy"),

@@ -699,8 +699,8 @@ def sample_grey_tile(task: GreyTile):
 
 def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method="mean",
                      noise="auto", sigma="auto", gain="auto", read_variance="auto",
-                     strength="auto", prior=None, schedule=None, sweeps=None, burn_in=None,
-                     samples=None, chains=None, fit_window=DEFAULT_FIT_WINDOW, out=None,
+                     strength="auto", curvature="auto", prior=None, schedule=None, sweeps=None,
+                     burn_in=None, samples=None, chains=None, fit_window=DEFAULT_FIT_WINDOW, out=None,
                      maps=None, executor=None, rng=None, progress=False) -> CleanResult:
     """Clean a greyscale image or stack tile by tile, with memory bounded by a band of tiles.
 
@@ -724,7 +724,7 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
         Tile side in pixels (tiles span every plane of a stack).
     halo : int
         Margin read around each tile.
-    method, noise, sigma, gain, read_variance, strength, prior, schedule, sweeps, burn_in, samples, chains
+    method, noise, sigma, gain, read_variance, strength, curvature, prior, schedule, sweeps, burn_in, samples, chains
         As for :func:`mrfclean.grey.clean_grey`.
     fit_window : int
         Side of the central window on which parameters left ``"auto"`` are estimated.
@@ -780,7 +780,8 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
     fw = _fit_window(rows, fit_window)
     y_fit = lv.to_work(rows.window(*fw)).astype(np.float64)
     setup = grey_setup(y_fit, noise=noise, sigma=sigma, gain=gain, read_variance=read_variance,
-                       strength=strength, prior=prior, seed=seed, tol=DEFAULT_TOL)
+                       strength=strength, curvature=curvature, prior=prior, seed=seed,
+                       tol=DEFAULT_TOL)
     del y_fit
     shape = (H, W) if rows.flat else (Z, H, W)
     est = out if out is not None else np.empty(shape, dtype)
@@ -850,7 +851,7 @@ def clean_tiled(image, *, settings, voxel_size=None, rng=None, progress=False, o
         return clean_grey_tiled(
             image, tile=s.tile, method="mean" if s.method in ("auto", "mpm") else s.method,
             noise=s.noise, sigma=s.sigma, gain=s.gain, read_variance=s.read_variance,
-            strength=s.strength, schedule=make_schedule(s.schedule, start=s.t_start, end=s.t_end),
+            strength=s.strength, curvature=s.curvature, schedule=make_schedule(s.schedule, start=s.t_start, end=s.t_end),
             sweeps=s.sweeps, burn_in=s.burn_in, samples=s.samples, chains=s.chains, out=out,
             maps=maps, executor=executor, rng=rng, progress=progress)
     if s.boundary != "free":

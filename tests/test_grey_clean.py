@@ -230,3 +230,49 @@ def test_sure_strength_walk_finds_the_oracle_strength_of_a_quadratic_prior():
     best = min(mse(l) for l in 2.0 ** np.arange(-6, 4.01, 0.25))
     assert mse(fit.strength) <= 1.01 * best
     assert 3 <= len(fit.table) <= 8  # a walk, not a sweep of the whole range
+
+
+@pytest.mark.parametrize("scene_kind", ["smooth", "steps"])
+def test_sure_curvature_choice_against_exact_posterior_means(scene_kind):
+    """The second-difference weight chosen by SURE, with a quadratic pairwise prior at a fixed
+    strength: the posterior mean is then linear in y and computed exactly by a sparse solve
+    (Rue & Held 2005, ch. 2), so every weight's true MSE is known.  On a smooth scene
+    (sines) the term helps, and the chosen weight must reach within 2% of the best MSE over
+    a fine grid (the walk's factor-4 grid and its parabolic refinement); on a scene of flat
+    steps it only blurs the steps, and SURE must leave it out (weight 0)."""
+    import scipy.sparse as sp
+    import scipy.sparse.linalg as sla
+    from test_grey_gmrf import difference_matrices, second_difference_matrix
+
+    from mrfclean.fit.grey import choose_curvature
+    from mrfclean.models.grey import GSMPrior
+
+    gen = np.random.default_rng(41)
+    H = W = 48
+    ii, jj = np.mgrid[0:H, 0:W]
+    if scene_kind == "smooth":
+        x = 0.5 + 0.3 * np.sin(ii / 6.0) * np.cos(jj / 9.0)
+    else:
+        x = 0.2 + 0.6 * (((ii // 12) + (jj // 12)) % 2)
+    s = 0.1
+    y = x + s * gen.standard_normal(x.shape)
+    n = H * W
+    L = sum(D.T @ D for _, D in difference_matrices((1, H, W), [(0, 0, 1), (0, 1, 0)])).tocsc()
+    C = second_difference_matrix((1, H, W))
+    C = (C.T @ C).tocsc()
+    lam = 60.0
+
+    def mse(kappa):
+        Q = sp.identity(n, format="csc") / s**2 + lam * L + kappa * C
+        return float(np.mean((sla.spsolve(Q, y.ravel() / s**2) - x.ravel()) ** 2))
+
+    prior = GSMPrior.quadratic(1.0, neighbourhood="4").with_strength(lam)
+    fit = choose_curvature(y, s * s, prior, start=2.0 / s**2, strength_factor=1.0, seed=5,
+                           tol=1e-6, burn_in=2, samples=30)
+    grid = [0.0] + list(2.0 ** np.arange(0, 14.01, 0.25))
+    best = min(grid, key=mse)
+    if scene_kind == "smooth":
+        assert best > 0 and fit.curvature > 0
+        assert mse(fit.curvature) <= 1.02 * mse(best)
+    else:
+        assert best == 0.0 and fit.curvature == 0.0
