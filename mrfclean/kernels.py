@@ -446,7 +446,9 @@ def count_mismatch(P, T, W, q):
 # Random numbers: the categorical draw of clique ``(o, p)`` uses counter
 # ``o * N + p`` of the sweep's key (``N = Z H W``); the perturbation normals use
 # a second key derived from it, normal counter ``o * N + p`` for the clique
-# normal (o = 0 .. n-1) and ``n N + p`` for the data normal (see :func:`normal`).
+# normal (o = 0 .. n-1), ``n N + p`` for the data normal, and ``(n + 1) N + p``
+# and ``(n + 2) N + p`` for the second-difference triples starting at ``p``
+# along the row and down the column (see :func:`normal`).
 
 _GREY_NOISE_SALT = np.uint64(0x6A09E667F3BCC909)
 _GREY_START_SALT = np.uint64(0xBB67AE8584CAA73B)
@@ -622,10 +624,10 @@ def _shifted_add(out, src, lo, hi, s):
 
 @njit(parallel=True, cache=True)
 def gmrf_matvec(x, w, offsets, dw, curv, out, rows):
-    """``out = Q x`` with ``Q = diag(dw) + sum_o D_o^T diag(w_o) D_o + curv C``, for a batch of images.
+    """``out = Q x`` with ``Q = diag(dw) + sum_o D_o^T diag(w_o) D_o + curv C^T C``, for a batch of images.
 
-    ``C = Dxx^T Dxx + Dyy^T Dyy`` is the in-plane second-difference term (see
-    :func:`_curv_row`; absent when ``curv = 0``).  ``x`` and ``out`` have shape
+    ``C`` stacks the in-plane second differences ``Dxx`` and ``Dyy`` (see
+    :func:`_curv_row`; no term when ``curv = 0``).  ``x`` and ``out`` have shape
     ``(R, Z, H, W)`` (``R`` right-hand sides sharing the operator); ``rows[r, k]``
     receives the partial sum of ``x * out`` of row ``k`` of image ``r`` (for
     the conjugate-gradient step length).
@@ -1111,22 +1113,43 @@ def _curv_row(src, z, i, curv, out):
 
     ``Dxx`` and ``Dyy`` take the in-plane second differences
     ``x[p] - 2 x[p + e] + x[p + 2 e]`` of every triple inside the plane (free
-    boundary), so the interior stencil is ``[1, -4, 6, -4, 1]`` along each axis.
+    boundary), so the interior stencil is ``[1, -4, 6, -4, 1]`` along each
+    axis; the two pixels at each end get the sums of their fewer triples.
+    Interior loops run over slices (vectorised, as :func:`_clique_rows`).
     """
     Z, H, W = src.shape
-    xrow = src[z, i]
-    for j in range(W - 2):  # along the row: scatter each triple's difference
-        d = curv * (xrow[j] - 2.0 * xrow[j + 1] + xrow[j + 2])
-        out[j] += d
-        out[j + 1] -= 2.0 * d
-        out[j + 2] += d
-    for c in range(max(0, i - 2), min(i, H - 3) + 1):  # down the columns: triples c, c+1, c+2
-        a = curv * (1.0 if c == i else (-2.0 if c == i - 1 else 1.0))
-        r0 = src[z, c]
-        r1 = src[z, c + 1]
-        r2 = src[z, c + 2]
+    x = src[z, i]
+    if W >= 5:  # along the row
+        o = out[2:W - 2]
+        a0, a1, a2, a3, a4 = x[0:W - 4], x[1:W - 3], x[2:W - 2], x[3:W - 1], x[4:W]
+        for t in range(W - 4):
+            o[t] += curv * (a0[t] + a4[t] - 4.0 * (a1[t] + a3[t]) + 6.0 * a2[t])
+        d0 = x[0] - 2.0 * x[1] + x[2]
+        d1 = x[1] - 2.0 * x[2] + x[3]
+        e0 = x[W - 3] - 2.0 * x[W - 2] + x[W - 1]
+        e1 = x[W - 4] - 2.0 * x[W - 3] + x[W - 2]
+        out[0] += curv * d0
+        out[1] += curv * (d1 - 2.0 * d0)
+        out[W - 2] += curv * (e1 - 2.0 * e0)
+        out[W - 1] += curv * e0
+    else:
+        for j in range(W - 2):  # scatter each triple's difference
+            d = curv * (x[j] - 2.0 * x[j + 1] + x[j + 2])
+            out[j] += d
+            out[j + 1] -= 2.0 * d
+            out[j + 2] += d
+    if 2 <= i < H - 2:  # down the columns, interior rows: the five-point stencil
+        r0, r1, r3, r4 = src[z, i - 2], src[z, i - 1], src[z, i + 1], src[z, i + 2]
         for j in range(W):
-            out[j] += a * (r0[j] - 2.0 * r1[j] + r2[j])
+            out[j] += curv * (r0[j] + r4[j] - 4.0 * (r1[j] + r3[j]) + 6.0 * x[j])
+    else:  # edge rows: the triples c, c+1, c+2 that hold row i
+        for c in range(max(0, i - 2), min(i, H - 3) + 1):
+            a = curv * (1.0 if c == i else (-2.0 if c == i - 1 else 1.0))
+            q0 = src[z, c]
+            q1 = src[z, c + 1]
+            q2 = src[z, c + 2]
+            for j in range(W):
+                out[j] += a * (q0[j] - 2.0 * q1[j] + q2[j])
 
 
 @njit(inline="always", cache=True)

@@ -85,7 +85,7 @@ def sweep_task(task: SweepTask) -> dict:
     d = result.diagnostics
     row.update({"status": "done", **metrics, "rhat": d.rhat, "chains_agree": d.chains_agree,
                 "final_energy": d.final_energy})
-    for k in ("coupling", "flip_rate", "sigma", "strength"):
+    for k in ("coupling", "flip_rate", "sigma", "strength", "curvature"):
         v = result.params.get(k)
         if isinstance(v, (int, float)) and k not in task.overrides:
             row[f"used_{k}"] = float(v)

@@ -704,7 +704,7 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
                      maps=None, executor=None, rng=None, progress=False) -> CleanResult:
     """Clean a greyscale image or stack tile by tile, with memory bounded by a band of tiles.
 
-    Unknown parameters (noise model, intensity frame, prior strength by SURE)
+    Unknown parameters (noise model, intensity frame, prior strength and curvature by SURE)
     are estimated once on a central window of ``fit_window`` pixels a side and
     then held fixed, so every tile has the same posterior model.  Each tile is
     sampled together with a margin of ``halo`` pixels of the image around it

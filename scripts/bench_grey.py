@@ -125,7 +125,8 @@ def main(argv=None) -> int:
             summary.setdefault(k, []).append(q)
             if size == max(args.sizes):
                 summary.setdefault(("time", k), []).append(t)
-        rows[-len(res)]["extra"] = (f"lam={r.params['strength']:.3g} rhat={r.diagnostics.rhat:.2f} "
+        rows[-len(res)]["extra"] = (f"lam={r.params['strength']:.3g} "
+                                    f"kappa={r.params.get('curvature', 0.0):.3g} rhat={r.diagnostics.rhat:.2f} "
                                     f"cover95={inside.mean():.3f} noise={r.params['noise']}")
         print(format_table(rows[-len(res):], ["case", "method", "PSNR", "SSIM", "seconds", "extra"],
                            floatfmt=".3f"), flush=True)

@@ -35,7 +35,7 @@ def main(argv=None) -> int:
     for name, x in zip(TRAINING, training_images(crop=args.crop, seed=args.seed)):
         for s in (0.05, 0.1, 0.2):
             y = (x + s * gen.standard_normal(x.shape))[None]
-            st = grey_setup(y, noise="gaussian", strength=1.0, seed=1)
+            st = grey_setup(y, noise="gaussian", strength=1.0, curvature=0.0, seed=1)
             u, var_u = st.observed(y)
             lam = choose_strength(u, var_u, st.prior, start=0.5, seed=1 ^ 0x3C3C3C3C,
                                   tol=DEFAULT_TOL).strength

@@ -11,7 +11,7 @@ from mrfclean.grey import clean_grey, credible_interval
 from mrfclean.metrics import psnr
 from mrfclean.models.grey import GreyModel, GSMPrior
 
-FAST = dict(strength=1.0, burn_in=2, samples=4, chains=1)  # one chain: no R-hat on 4 draws
+FAST = dict(strength=1.0, curvature=0.0, burn_in=2, samples=4, chains=1)  # one chain: no R-hat on 4 draws
 
 
 def scene(shape=(48, 56)):
@@ -276,3 +276,33 @@ def test_sure_curvature_choice_against_exact_posterior_means(scene_kind):
         assert mse(fit.curvature) <= 1.02 * mse(best)
     else:
         assert best == 0.0 and fit.curvature == 0.0
+
+
+def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
+    """``grey_setup`` with everything "auto": on a smooth scene SURE takes the second-difference
+    term (recorded as estimated, with its table), the prior carries it at the strength it was
+    chosen at; on flat steps it is left out after one extra risk.  A curvature carried by a
+    given prior is replaced under "auto" and kept when given."""
+    from mrfclean.grey import CURVATURE_STRENGTH, grey_setup
+
+    gen = np.random.default_rng(43)
+    ii, jj = np.mgrid[0:96, 0:96]
+    smooth = 0.5 + 0.3 * np.sin(ii / 7.0) * np.cos(jj / 11.0)
+    steps = 0.2 + 0.6 * (((ii // 16) + (jj // 16)) % 2)
+    for x, want in ((smooth, True), (steps, False)):
+        y = (x + 0.1 * gen.standard_normal(x.shape))[None]
+        st = grey_setup(y, seed=3)
+        d = st.describe()
+        assert "curvature" in st.estimated and "sure_curvature" in d
+        assert (st.prior.curvature > 0) == want
+        assert d["curvature"] == st.prior.curvature
+        if want:
+            first = min(st.sure_table, key=lambda t: t[1])[0]
+            assert st.prior.strength == pytest.approx(first * CURVATURE_STRENGTH)
+            assert len(d["sure_curvature"]) >= 3
+        else:
+            assert len(d["sure_curvature"]) == 2  # the risk without it and one try
+    given = GSMPrior.load().with_curvature(50.0)
+    y = (steps + 0.1 * gen.standard_normal(steps.shape))[None]
+    assert grey_setup(y, prior=given, seed=3).prior.curvature == 0.0
+    assert grey_setup(y, prior=given, curvature=7.0, strength=1.0).prior.curvature == 7.0

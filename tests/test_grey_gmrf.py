@@ -77,6 +77,7 @@ def test_operator_matches_sparse_matrix(shape, neighbourhood, tol, dtype, rtol, 
     m = GreyModel(gen.normal(size=shape), variance=gen.uniform(0.5, 2, size=shape), prior=prior,
                   tol=tol)
     assert m.solver_dtype == dtype
+    assert m.curv == curvature  # the references below take the weight from the model
     w = gen.uniform(0.1, 3.0, size=m.w.shape)
     x = gen.normal(size=shape)
     Q = sparse_precision(m, w)
@@ -131,6 +132,30 @@ def test_conditional_mean_error_is_small_against_the_noise_at_low_noise(sigma):
     exact = sla.spsolve(sparse_precision(m, w), m.b.ravel())
     assert np.sqrt(np.mean((got - exact) ** 2)) <= MEAN_ERROR_SHARE * sigma
 
+
+@pytest.mark.parametrize("shape", [(1, 6, 7), (2, 5, 4)])
+def test_curvature_perturbation_is_the_transposed_second_differences_of_its_normals(shape):
+    """With no clique weights and no data precision the perturbation is exactly
+    ``scale sqrt(kappa) C^T e``, ``C`` the stacked second differences built with scipy and
+    ``e`` the counter normals of the row triples (``(n + 1) N + p``) and column triples
+    (``(n + 2) N + p``): so its covariance is ``scale^2 kappa C^T C`` and the two families
+    draw different numbers (round-off only)."""
+    offsets = np.array([(0, 0, 1), (0, 1, 0)], dtype=np.int64)
+    n, N = len(offsets), int(np.prod(shape))
+    w = np.zeros((n, *shape))
+    dw = np.zeros(shape)
+    out, buf, cbuf = np.empty(shape), np.empty_like(w), np.empty((2, *shape))
+    key, scale, kappa = np.uint64(kernels.stream_key(3, 1, 4)), 0.7, 2.5
+    kernels.gmrf_perturbation(w, offsets, dw, key, scale, out, buf, kappa, cbuf)
+    e = kernels.normal_many(key, (n + 1) * N, 2 * N)
+    Z, H, W = shape
+    zz, ii, jj = np.meshgrid(np.arange(Z), np.arange(H), np.arange(W), indexing="ij")
+    e_rows = e[:N][(jj < W - 2).ravel()]
+    e_cols = e[N:][(ii < H - 2).ravel()]
+    C = second_difference_matrix(shape)
+    expect = scale * np.sqrt(kappa) * (C.T @ np.r_[e_rows, e_cols])
+    np.testing.assert_allclose(out.ravel(), expect, rtol=1e-12, atol=1e-12)
+
 def test_ziggurat_tables_match_published_constants():
     """The base-layer edge r found by bisection: 3.442619855899 for 128 layers (Marsaglia &
     Tsang 2000, J. Stat. Softw. 5(8), printed to 12 decimals) and 3.6541528853610088 for 256
@@ -182,6 +207,7 @@ def gmrf_case(request):
     y = gen.normal(size=(H, W))
     prior = GSMPrior.quadratic(lam, neighbourhood="8").with_curvature(request.param)
     model = GreyModel(y, variance=sigma2, prior=prior, tol=1e-9)
+    assert model.curv == request.param
     Q = sparse_precision(model, np.broadcast_to(lam, model.w.shape))
     mean = sla.spsolve(Q, y.ravel() / sigma2)
     var = np.diag(np.linalg.inv(Q.toarray()))
@@ -291,7 +317,7 @@ def test_energy_from_the_scale_draw_equals_direct_energy(temperature, spread, cu
     y = spread * gen.normal(size=(2, 21, 19))
     m = GreyModel(y, variance=gen.uniform(0.2, 1.0, y.shape),
                   prior=GSMPrior.load().with_strength(1.3, 0.7).with_curvature(curvature))
-    assert kernels.ladder4(m.prec)
+    assert kernels.ladder4(m.prec) and m.curv == curvature
     st = m.start(0, 1)
     for k in range(2):
         m.sweep(st, temperature, int(kernels.stream_key(4, 0, k)))

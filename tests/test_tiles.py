@@ -210,7 +210,7 @@ def _grey_scan():
     return x, (x + 20 * np.random.default_rng(0).standard_normal(x.shape)).astype(np.float32)
 
 
-GREY_FIXED = dict(sigma=20.0, strength=1.0, burn_in=3, samples=20)
+GREY_FIXED = dict(sigma=20.0, strength=1.0, curvature=0.0, burn_in=3, samples=20)
 
 
 def _seam_mask(n, cuts, width=3):

@@ -481,9 +481,11 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
     while the risk falls, so that the minimum is bracketed by its neighbours on
     a geometric grid within ``bounds``; with ``refine`` the vertex of the
     parabola through the best point and its neighbours in log strength is
-    tried too.  Each risk is from a short temperature-1 chain on ``crops``
-    windows of ``crop`` x ``crop`` pixels, whose Rao-Blackwellised mean and
-    summed posterior variance give :func:`sure`.  All strengths use the same
+    tried too.  Each risk is from ``chains`` short temperature-1 chains
+    (``burn_in + samples`` sweeps each, started from differently smoothed
+    images, :data:`SURE_START_WIDTHS`) on ``crops`` windows of ``crop`` x
+    ``crop`` pixels, whose Rao-Blackwellised mean and summed posterior
+    variance give :func:`sure`.  All strengths use the same
     random numbers (common random numbers), so their comparison is not blurred
     by Monte-Carlo noise.  A walk from the usual range (0.1-2 on the benchmark
     crops) needs 3-5 risks, where a fixed grid over the same range needed 8.
@@ -504,6 +506,9 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
         Window side; ``"auto"``: :func:`sure_window` of the plane.
     crops : int
         Number of windows, spread evenly over the plane.
+    burn_in, samples, chains : int
+        Sweeps discarded and kept per chain, and chains per risk (at most
+        ``len(SURE_START_WIDTHS)``).
 
     Returns
     -------
@@ -543,6 +548,9 @@ def _sure_risk(blocks, prior, *, seed, burn_in, samples, chains, tol):
     """SURE per pixel of the posterior mean under ``prior``, over the windows ``blocks``."""
     from .. import sampler
     from ..models.grey import GreyModel
+
+    if not 1 <= chains <= len(SURE_START_WIDTHS):
+        raise ValueError(f"chains must be in 1..{len(SURE_START_WIDTHS)}, got {chains}")
 
     tot, n = 0.0, 0
     for k, (yc, vc, _) in enumerate(blocks):
@@ -602,7 +610,7 @@ class CurvatureFit:
 
 
 def choose_curvature(observed, variance, prior: GSMPrior, *, start, step=4.0, none_risk=None,
-                     strength_factor=0.5, crop="auto", crops=4, burn_in=2, samples=2, chains=3, seed=0,
+                     strength_factor=1 / 3, crop="auto", crops=4, burn_in=2, samples=2, chains=3, seed=0,
                      tol=1e-3) -> CurvatureFit:
     r"""Weight of the second-difference term minimising SURE.
 
@@ -610,10 +618,26 @@ def choose_curvature(observed, variance, prior: GSMPrior, *, start, step=4.0, no
     strength times ``strength_factor``: the risk there with weight ``start``
     is compared with the risk of the prior alone (``none_risk``, or
     computed).  Only if the term helps does a walk in factors of ``step``
-    (with a parabolic refinement, as :func:`choose_strength`) look for the
-    best weight, within ``start / step**3`` to ``start * step**4``.  Windows,
+    (as :func:`choose_strength`, without its parabolic refinement: the risk
+    is flat near its minimum in the weight) look for the best weight, within
+    ``start / step**3`` to ``start * step**4``.  Windows,
     chains and seeds are those of :func:`choose_strength`, so the risks are
-    comparable with its table; the strength is then best walked again.
+    comparable with its table.
+
+    Parameters
+    ----------
+    observed, variance
+        As for :func:`choose_strength`.
+    prior : GSMPrior
+        Prior at the strength chosen without the term (its curvature is replaced).
+    start, step : float
+        First weight tried and the ratio between neighbouring weights.
+    none_risk : float, optional
+        Risk of ``prior`` as it is, if already known (from the strength walk).
+    strength_factor : float
+        The weights are tried at ``prior.strength * strength_factor``.
+    crop, crops, burn_in, samples, chains, seed, tol
+        As for :func:`choose_strength`.
 
     Returns
     -------
@@ -623,6 +647,7 @@ def choose_curvature(observed, variance, prior: GSMPrior, *, start, step=4.0, no
     """
     blocks = _sure_blocks(observed, variance, crop, crops)
     sz = blocks[0][2]
+    prior = prior.with_curvature(0.0)
     if none_risk is None:
         none_risk = _sure_risk(blocks, prior.with_strength(prior.strength, sz), seed=seed,
                                burn_in=burn_in, samples=samples, chains=chains, tol=tol)
@@ -637,6 +662,6 @@ def choose_curvature(observed, variance, prior: GSMPrior, *, start, step=4.0, no
     r1 = risk(start)
     if not r1 < r0:
         return CurvatureFit(0.0, float(prior.strength), [[0.0, r0], [float(start), r1]])
-    best, table = _geometric_walk(risk, start, step, (start / step**3, start * step**4), True,
+    best, table = _geometric_walk(risk, start, step, (start / step**3, start * step**4), False,
                                   known={0: r1})
     return CurvatureFit(best, lam, [[0.0, r0]] + table)

@@ -19,13 +19,20 @@ and the posterior energy of an image (scales summed out) is
 .. math::
 
     E(x) = -\sum_{o,p} \log \phi_o(x_{p+o} - x_p)
+           + \frac{\kappa}{2} \|C x\|^2
            + \sum_p \frac{(x_p - y_p)^2}{2 v_p},
-    \qquad p(x \mid y) \propto \exp(-E(x) / T).
+    \qquad p(x \mid y) \propto \exp(-E(x) / T),
+
+where the optional curvature term (weight :math:`\kappa \ge 0`, 0 by default)
+stacks the in-plane second differences :math:`x_p - 2 x_{p+e} + x_{p+2e}` along
+rows and columns in :math:`C`: a quadratic prior of the kind used for smooth
+surfaces (Rue & Held 2005, ch. 3), which favours smooth ramps over flat steps.
 
 Given one scale per clique the prior is a Gaussian MRF with precision
-:math:`\sum_o D_o^\top \mathrm{diag}(\lambda_o \pi_{c}) D_o` (Rue & Held 2005),
-so the posterior of the image is Gaussian with precision
-:math:`Q = V^{-1} + \sum_o D_o^\top \Lambda_o D_o` and mean :math:`Q^{-1} V^{-1} y`;
+:math:`\sum_o D_o^\top \mathrm{diag}(\lambda_o \pi_{c}) D_o + \kappa C^\top C`
+(Rue & Held 2005), so the posterior of the image is Gaussian with precision
+:math:`Q = V^{-1} + \sum_o D_o^\top \Lambda_o D_o + \kappa C^\top C` and mean
+:math:`Q^{-1} V^{-1} y`;
 given the image the scales are independent categorical draws.  This is the
 auxiliary-variable Gibbs sampler of Schmidt, Gao & Roth (2010).  The image
 block is drawn exactly by perturbation-optimisation (Papandreou & Yuille 2010):
@@ -383,7 +390,8 @@ class GreyModel(ChainModel):
     :attr:`solver_dtype`, 8 in float64) and each chain's drawn scale
     components (1 byte), plus fourteen solver-word images (two
     conjugate-gradient systems of five vectors, two right-hand sides, the
-    diagonal and its inverse) and the float64 data, chain states and tallies.
+    diagonal and its inverse; two more for the triple normals when the
+    curvature term is on) and the float64 data, chain states and tallies.
 
     Examples
     --------
