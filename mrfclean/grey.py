@@ -53,14 +53,23 @@ AUTO_PG_SIGNIFICANCE = 4.0
 #: Where the SURE walk starts: ``log strength = a + b log(sigma / span)``, the
 #: least-squares line through the strengths SURE chose on the prior's training
 #: images at sigma 0.05, 0.1 and 0.2 (scripts/fit_strength_guess.py; residual sd
-#: 0.84 in log strength).  A start near the answer saves risk evaluations.
-STRENGTH_GUESS = (-4.567, -1.364)
+#: 1.15 in log strength).  A start near the answer saves risk evaluations.
+STRENGTH_GUESS = (-4.140, -0.995)
+#: ... and that residual sd: a strength SURE puts this far above the guess marks
+#: an image smoother than the training images (see CURVATURE_GATE).
+STRENGTH_GUESS_SD = 1.15
 #: First weight of the second-difference term tried by SURE, times the noise
 #: precision (prototype runs put the best weight at 0.25-2.5 over sigma^2 on
 #: smooth images; on textured ones none helps).
 CURVATURE_GUESS = 2.0
 #: ... tried at this share of the strength chosen without it.
 CURVATURE_STRENGTH = 1 / 3
+#: With the shipped prior and the strength on "auto", the term is tried only when
+#: SURE's strength is at least this many times the guess for the noise level
+#: (one residual sd in log strength): smoother than a typical training image.
+#: Elsewhere it saves a risk evaluation; on the benchmark crops only cell and
+#: moon pass (ratios 2-13; camera and coins 0.4-2.8).
+CURVATURE_GATE = math.exp(STRENGTH_GUESS_SD)
 
 
 def strength_guess(noise_sd):
@@ -366,6 +375,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     # a curvature carried by a given prior counts as given unless "auto" asks for SURE
     base = base.with_curvature(0.0 if curvature == "auto"
                                else _number("curvature", curvature, positive=False))
+    gated = False
     if strength == "auto":
         # the guess was fitted for the shipped prior; another prior starts at 0.5
         start = strength_guess(float(np.sqrt(np.mean(var_u)))) if prior is None else 0.5
@@ -373,9 +383,13 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         lam = fit.strength
         setup.sure_table = fit.table
         estimated.append("strength")
+        gated = prior is None and lam < CURVATURE_GATE * start
     else:
         lam = _number("strength", strength, positive=False)
-    if curvature == "auto":
+    if curvature == "auto" and gated:
+        setup.curvature_table = []  # not tried: the image is no smoother than usual
+        estimated.append("curvature")
+    elif curvature == "auto":
         # the risk at the chosen strength, when the walk computed it there
         none_risk = next((r for v, r in (setup.sure_table or []) if v == lam), None)
         cfit = choose_curvature(u, var_u, base.with_strength(lam), seed=sseed, tol=tol,

@@ -281,8 +281,9 @@ def test_sure_curvature_choice_against_exact_posterior_means(scene_kind):
 def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
     """``grey_setup`` with everything "auto": on a smooth scene SURE takes the second-difference
     term (recorded as estimated, with its table), the prior carries it at the strength it was
-    chosen at; on flat steps it is left out after one extra risk.  A curvature carried by a
-    given prior is replaced under "auto" and kept when given."""
+    chosen at; on flat steps it is left out after one extra risk.  With the shipped prior
+    the try is skipped unless SURE's strength is well above the guess for the noise level.
+    A curvature carried by a given prior is replaced under "auto" and kept when given."""
     from mrfclean.grey import CURVATURE_STRENGTH, grey_setup
 
     gen = np.random.default_rng(43)
@@ -291,7 +292,8 @@ def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
     steps = 0.2 + 0.6 * (((ii // 16) + (jj // 16)) % 2)
     for x, want in ((smooth, True), (steps, False)):
         y = (x + 0.1 * gen.standard_normal(x.shape))[None]
-        st = grey_setup(y, seed=3)
+        # a prior given explicitly: no gate, SURE itself decides
+        st = grey_setup(y, seed=3, prior=GSMPrior.load())
         d = st.describe()
         assert "curvature" in st.estimated and "sure_curvature" in d
         assert (st.prior.curvature > 0) == want
@@ -302,6 +304,16 @@ def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
             assert len(d["sure_curvature"]) >= 3
         else:
             assert len(d["sure_curvature"]) == 2  # the risk without it and one try
+    # the shipped prior: the gate skips the try unless the strength is well above the guess
+    from mrfclean.grey import CURVATURE_GATE, strength_guess
+
+    for x in (smooth, steps):
+        y = (x + 0.1 * gen.standard_normal(x.shape))[None]
+        st = grey_setup(y, seed=3)
+        u, v = st.observed(y)
+        tried = len(st.curvature_table) > 0
+        assert tried == (st.sure_table and min(st.sure_table, key=lambda t: t[1])[0]
+                         >= CURVATURE_GATE * strength_guess(float(np.sqrt(np.mean(v)))))
     given = GSMPrior.load().with_curvature(50.0)
     y = (steps + 0.1 * gen.standard_normal(steps.shape))[None]
     assert grey_setup(y, prior=given, seed=3).prior.curvature == 0.0
