@@ -953,15 +953,21 @@ def _ordered_sum(rows):
     return e
 
 
+@njit(inline="always", cache=True)
+def _plane_row(k, Z, H):
+    """``(a, z, i)`` of flat row index ``k = (a Z + z) H + i`` over planes ``a`` of ``(Z, H)`` rows."""
+    a = k // (Z * H)
+    r = k - a * Z * H
+    z = r // H
+    return a, z, r - z * H
+
+
 @njit(parallel=True, cache=True)
 def gsm_expand(comp, prec, strength, w):
     """``w[o, p] = strength[o] * prec[o, comp[o, p]]`` (0 where ``comp`` is :data:`NO_CLIQUE`)."""
     n, Z, H, W = comp.shape
     for k in prange(n * Z * H):
-        o = k // (Z * H)
-        r = k - o * Z * H
-        z = r // H
-        i = r - z * H
+        o, z, i = _plane_row(k, Z, H)
         crow = comp[o, z, i]
         wrow = w[o, z, i]
         lam = strength[o]
@@ -997,10 +1003,7 @@ def _clique_normals(w, offsets, dw, key, buf, out):
     n = offsets.shape[0]
     N = Z * H * W
     for k in prange((n + 1) * Z * H):
-        o = k // (Z * H)
-        r = k - o * Z * H
-        z = r // H
-        i = r - z * H
+        o, z, i = _plane_row(k, Z, H)
         base = (z * H + i) * W
         if o == n:  # the data normals
             fill_normals(key, n * N + base, out[z, i], 0, W)
@@ -1053,10 +1056,7 @@ def _curv_normals(key, first, cbuf):
     T, Z, H, W = cbuf.shape
     N = Z * H * W
     for k in prange(T * Z * H):
-        t = k // (Z * H)
-        r = k - t * Z * H
-        z = r // H
-        i = r - z * H
+        t, z, i = _plane_row(k, Z, H)
         row = cbuf[t, z, i]
         if t == 0:
             hi = max(W - 2, 0)
