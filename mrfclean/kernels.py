@@ -646,6 +646,13 @@ def gmrf_matvec(x, w, offsets, dw, curv, out, rows):
             rows[r, k] = acc
 
 
+@njit(inline="always", cache=True)
+def _triple_coef(c, i):
+    """Coefficient of row (or column) ``i`` in the second difference of the triple
+    ``c, c + 1, c + 2``: 1 at its ends, -2 in its middle."""
+    return -2.0 if c == i - 1 else 1.0
+
+
 @njit(parallel=True, cache=True)
 def gmrf_diagonal(w, offsets, dw, curv, out):
     """Diagonal of ``Q`` (data precision, the weights of every clique touching a pixel
@@ -679,7 +686,7 @@ def gmrf_diagonal(w, offsets, dw, curv, out):
                 orow[j + 1] += 4.0 * curv
                 orow[j + 2] += curv
             for c in range(max(0, i - 2), min(i, H - 3) + 1):
-                a = 4.0 if c == i - 1 else 1.0
+                a = _triple_coef(c, i) ** 2
                 for j in range(W):
                     orow[j] += a * curv
 
@@ -1082,7 +1089,7 @@ def _gather_curv(cbuf, a, out):
             orow[j + 1] -= 2.0 * e
             orow[j + 2] += e
         for c in range(max(0, i - 2), min(i, H - 3) + 1):
-            coef = a * (1.0 if c == i else (-2.0 if c == i - 1 else 1.0))
+            coef = a * _triple_coef(c, i)
             ey = cbuf[1, z, c]
             for j in range(W):
                 orow[j] += coef * ey[j]
@@ -1144,7 +1151,7 @@ def _curv_row(src, z, i, curv, out):
             out[j] += curv * (r0[j] + r4[j] - 4.0 * (r1[j] + r3[j]) + 6.0 * x[j])
     else:  # edge rows: the triples c, c+1, c+2 that hold row i
         for c in range(max(0, i - 2), min(i, H - 3) + 1):
-            a = curv * (1.0 if c == i else (-2.0 if c == i - 1 else 1.0))
+            a = curv * _triple_coef(c, i)
             q0 = src[z, c]
             q1 = src[z, c + 1]
             q2 = src[z, c + 2]
