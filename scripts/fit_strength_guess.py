@@ -1,10 +1,13 @@
-"""Fit the starting point of the SURE strength walk (``mrfclean.grey.STRENGTH_GUESS``).
+"""Fit the strength guesses of the SURE walk (``mrfclean.grey.STRENGTH_GUESS`` and ``STRENGTH_START``).
 
 On the prior's training images (scripts/learn_grey_prior.py; never the
 benchmark's), noised at sigma 0.05, 0.1 and 0.2, the strength SURE chooses from
-the default start is regressed on the noise sd in the prior's units:
-``log strength = a + b log(sigma / span)``.  Prints ``a``, ``b`` and the
-residual sd.
+a fixed start is regressed on the noise sd in the prior's units,
+``log strength = a + b log(sigma / span)`` (``STRENGTH_GUESS``, the reference
+of the curvature gate), and on that and the image's estimated roughness ``g``
+(``mrfclean.fit.grey.signal_roughness``), ``log strength = a + b log(sigma /
+span) + c log g`` (``STRENGTH_START``, where the walk starts).  Prints the
+coefficients and residual sds of both lines.
 
 Example
 -------
@@ -21,7 +24,7 @@ import numpy as np
 sys.path.insert(0, __file__.rsplit("/", 1)[0])
 from learn_grey_prior import TRAINING, training_images  # noqa: E402
 
-from mrfclean.fit.grey import choose_strength  # noqa: E402
+from mrfclean.fit.grey import choose_strength, signal_roughness  # noqa: E402
 from mrfclean.grey import DEFAULT_TOL, grey_setup  # noqa: E402
 
 
@@ -40,13 +43,16 @@ def main(argv=None) -> int:
             lam = choose_strength(u, var_u, st.prior, start=0.5, seed=1 ^ 0x3C3C3C3C,
                                   tol=DEFAULT_TOL).strength
             srel = st.term.sigma / st.span
-            rows.append((srel, lam))
-            print(f"{name:22s} sigma {s:4.2f}  sigma/span {srel:.4f}  strength {lam:.3f}", flush=True)
-    r = np.array(rows)
-    A = np.vstack([np.ones(len(r)), np.log(r[:, 0])]).T
-    coef = np.linalg.lstsq(A, np.log(r[:, 1]), rcond=None)[0]
-    resid = np.log(r[:, 1]) - A @ coef
-    print(f"a = {coef[0]:.3f}, b = {coef[1]:.3f}, residual sd {np.std(resid):.2f}")
+            g = signal_roughness(u, var_u)
+            rows.append((srel, g, lam))
+            print(f"{name:22s} sigma {s:4.2f}  sigma/span {srel:.4f}  roughness {g:.3g}  "
+                  f"strength {lam:.3f}", flush=True)
+    r = np.log(np.array(rows))
+    for label, cols in (("STRENGTH_GUESS", r[:, :1]), ("STRENGTH_START", r[:, :2])):
+        A = np.hstack([np.ones((len(r), 1)), cols])
+        coef = np.linalg.lstsq(A, r[:, 2], rcond=None)[0]
+        resid = r[:, 2] - A @ coef
+        print(f"{label} = ({', '.join(f'{c:.3f}' for c in coef)}), residual sd {np.std(resid):.2f}")
     return 0
 
 
