@@ -1,0 +1,76 @@
+"""How the greyscale posterior mean's error depends on burn-in and kept sweeps.
+
+For each benchmark image and noise level (512^2 crops of ``scripts/bench_grey.py``,
+Gaussian noise drawn afresh, seed 5), the noise model, strength and curvature
+are estimated once (``grey_setup``, everything on "auto"); then the posterior
+is sampled with each ``burn-in + kept`` chain length (2 chains, same seed) and
+the PSNR of the mean and the coverage of the 95% intervals are printed, with
+their averages over the cases.  Only the chain length changes between columns,
+so their differences are the chain length's effect alone.
+
+Example
+-------
+    python scripts/chain_lengths.py --lengths 3+6 2+6 1+7 1+6 0+8
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib.util
+import os
+import sys
+import warnings
+
+import numpy as np
+
+from mrfclean.grey import grey_setup, sample_block
+from mrfclean.metrics import psnr
+
+
+def _bench():
+    """``scripts/bench_grey.py`` as a module (its crops)."""
+    path = os.path.join(os.path.dirname(os.path.abspath(__file__)), "bench_grey.py")
+    spec = importlib.util.spec_from_file_location("bench_grey", path)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod
+
+
+def main(argv=None) -> int:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--lengths", nargs="+", default=["3+6", "1+7"], help="burn-in+kept per chain")
+    p.add_argument("--images", nargs="+", default=["cell", "camera", "moon", "coins"])
+    p.add_argument("--sigmas", type=float, nargs="+", default=[0.05, 0.1, 0.2])
+    p.add_argument("--size", type=int, default=512)
+    args = p.parse_args(argv)
+    lengths = [tuple(int(v) for v in s.split("+")) for s in args.lengths]
+    bg = _bench()
+    warnings.simplefilter("ignore")
+    gen = np.random.default_rng(5)
+    scores = {c: [] for c in lengths}
+    print(f"{'case':14s}" + "".join(f"  {f'{b}+{k}: dB, cover':>20s}" for b, k in lengths))
+    for name in args.images:
+        for s in args.sigmas:
+            x = bg.crop(name, args.size)
+            y = (x + s * gen.standard_normal(x.shape))[None]
+            st = grey_setup(y, seed=1)
+            line = f"{name + ' s=' + str(s):14s}"
+            for b, k in lengths:
+                blk = sample_block(y, st, burn_in=b, samples=k, seed=7)
+                m = (st.low + st.span * blk.mean_u)[0]
+                sd = (st.span * blk.std_u)[0]
+                q = psnr(x, m, data_range=1.0)
+                cover = float(np.mean(np.abs(m - x) <= 1.959964 * sd))
+                scores[(b, k)].append((q, cover))
+                line += f"  {q:9.3f} {cover:9.4f}"
+            print(line, flush=True)
+    line = f"{'mean':14s}"
+    for c in lengths:
+        a = np.array(scores[c])
+        line += f"  {a[:, 0].mean():9.3f} {a[:, 1].mean():9.4f}"
+    print(line)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
