@@ -307,7 +307,9 @@ class GreySetup:
     Tiles of one image share it, so that every tile has the same model.
     ``low`` and ``span`` map intensities to the prior's units, ``u = (y - low) / span``;
     ``sure_table``, ``curvature_table`` and ``noise_curve`` record how the
-    strength, the curvature weight and the noise were chosen (None when given).
+    strength, the curvature weight and the noise were chosen (None when given);
+    ``sure_strength`` is the strength SURE chose before the curvature term was
+    tried (the prior's own strength unless the term was taken).
     """
 
     term: object  # GaussianNoise or PoissonGaussianNoise
@@ -318,6 +320,7 @@ class GreySetup:
     sure_table: list | None = None
     noise_curve: dict | None = None
     curvature_table: list | None = None
+    sure_strength: float | None = None
 
     def observed(self, y, smooth=None):
         """``(u, var_u)``: a block of physical intensities in the prior's units and its noise
@@ -331,6 +334,7 @@ class GreySetup:
              "intensity_span": self.span, "estimated": list(self.estimated)}
         if self.sure_table is not None:
             d["sure"] = self.sure_table
+            d["sure_strength"] = self.sure_strength
         if self.curvature_table is not None:
             d["sure_curvature"] = self.curvature_table
         if self.noise_curve is not None:
@@ -421,6 +425,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         fit = choose_strength(u, var_u, base, start=start, seed=sseed, tol=tol)
         lam = fit.strength
         setup.sure_table = fit.table
+        setup.sure_strength = lam
         estimated.append("strength")
         gated = prior is None and lam < CURVATURE_GATE * strength_guess(noise_sd)
     else:

@@ -357,8 +357,8 @@ def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
         assert (st.prior.curvature > 0) == want
         assert d["curvature"] == st.prior.curvature
         if want:
-            first = min(st.sure_table, key=lambda t: t[1])[0]
-            assert st.prior.strength == pytest.approx(first * CURVATURE_STRENGTH)
+            assert d["sure_strength"] == st.sure_strength
+            assert st.prior.strength == pytest.approx(st.sure_strength * CURVATURE_STRENGTH)
             assert len(d["sure_curvature"]) >= 3
         else:
             assert len(d["sure_curvature"]) == 2  # the risk without it and one try
@@ -370,7 +370,7 @@ def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
         st = grey_setup(y, seed=3)
         u, v = st.observed(y)
         tried = len(st.curvature_table) > 0
-        assert tried == (st.sure_table and min(st.sure_table, key=lambda t: t[1])[0]
+        assert tried == (st.sure_strength
                          >= CURVATURE_GATE * strength_guess(float(np.sqrt(np.mean(v)))))
     given = GSMPrior.load().with_curvature(50.0)
     y = (steps + 0.1 * gen.standard_normal(steps.shape))[None]
