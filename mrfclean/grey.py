@@ -434,8 +434,9 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         setup.curvature_table = []  # not tried: the image is no smoother than usual
         estimated.append("curvature")
     elif curvature == "auto":
-        # the risk at the chosen strength, when the walk computed it there
-        none_risk = next((r for v, r in (setup.sure_table or []) if v == lam), None)
+        # the least risk the walk found for the prior alone (the parabola's vertex it
+        # settles on is not itself evaluated): one risk fewer than computing it afresh
+        none_risk = min((r for _, r in setup.sure_table), default=None) if setup.sure_table else None
         cfit = choose_curvature(u, var_u, base.with_strength(lam), seed=sseed, tol=tol,
                                 start=CURVATURE_GUESS / float(np.mean(var_u)), none_risk=none_risk,
                                 strength_factor=CURVATURE_STRENGTH if strength == "auto" else 1.0)

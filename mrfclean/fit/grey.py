@@ -705,7 +705,9 @@ def choose_curvature(observed, variance, prior: GSMPrior, *, start, step=4.0, no
     start, step : float
         First weight tried and the ratio between neighbouring weights.
     none_risk : float, optional
-        Risk of ``prior`` as it is, if already known (from the strength walk).
+        Risk without the term to compare with (``mrfclean.grey.grey_setup``
+        passes the least risk its strength walk found).  Default: computed
+        for ``prior`` as it is.
     strength_factor : float
         The weights are tried at ``prior.strength * strength_factor``.
     crop, crops, burn_in, samples, chains, seed, tol
