@@ -16,24 +16,17 @@ Example
 from __future__ import annotations
 
 import argparse
-import importlib.util
 import os
 import sys
 import warnings
 
 import numpy as np
 
-from mrfclean.grey import grey_setup, sample_block
-from mrfclean.metrics import psnr
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from bench_grey import crop  # noqa: E402
 
-
-def _bench():
-    """``scripts/bench_grey.py`` as a module (its crops)."""
-    path = os.path.join(os.path.dirname(os.path.abspath(__file__)), "bench_grey.py")
-    spec = importlib.util.spec_from_file_location("bench_grey", path)
-    mod = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(mod)
-    return mod
+from mrfclean.grey import grey_setup, sample_block  # noqa: E402
+from mrfclean.metrics import psnr  # noqa: E402
 
 
 def main(argv=None) -> int:
@@ -44,14 +37,13 @@ def main(argv=None) -> int:
     p.add_argument("--size", type=int, default=512)
     args = p.parse_args(argv)
     lengths = [tuple(int(v) for v in s.split("+")) for s in args.lengths]
-    bg = _bench()
     warnings.simplefilter("ignore")
     gen = np.random.default_rng(5)
     scores = {c: [] for c in lengths}
     print(f"{'case':14s}" + "".join(f"  {f'{b}+{k}: dB, cover':>20s}" for b, k in lengths))
     for name in args.images:
         for s in args.sigmas:
-            x = bg.crop(name, args.size)
+            x = crop(name, args.size)
             y = (x + s * gen.standard_normal(x.shape))[None]
             st = grey_setup(y, seed=1)
             line = f"{name + ' s=' + str(s):14s}"
