@@ -798,11 +798,13 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
                 prod = 1.0
             acc -= lmax
             if draw:
-                # the first c whose running sum exceeds u
+                # the first c whose running sum exceeds u: the running sums do not
+                # decrease, so it is the count of those at or below u (no branch to
+                # mispredict at a data-dependent exit)
                 u = uniform(key, base + j) * tot
                 c = 0
-                while c < K - 1 and buf[1 + c, t] <= u:
-                    c += 1
+                for q in range(K - 1):
+                    c += buf[1 + q, t] <= u
                 crow[j] = c
         else:
             m, tot, c = _gsm_clique(la, pr, lam, d2v[t], 1.0, lp)

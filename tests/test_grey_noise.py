@@ -3,9 +3,8 @@
 import numpy as np
 import pytest
 import skimage.data
-from skimage.util import img_as_float
-
 from scipy import ndimage
+from skimage.util import img_as_float
 
 from mrfclean.fit.grey import estimate_poisson_gaussian, estimate_sigma, noise_gain, signal_roughness
 
