@@ -598,7 +598,11 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
 
 
 def _sure_blocks(observed, variance, crop, crops):
-    """The SURE windows of an image: ``[(y, v, strength_z)]`` (see :func:`choose_strength`)."""
+    """The SURE windows of an image: ``[(y, v, strength_z, starts)]`` (see :func:`choose_strength`).
+
+    ``starts`` are the windows smoothed by each of :data:`SURE_START_WIDTHS`,
+    made once here for every risk of a search.
+    """
     y = np.asarray(observed, dtype=np.float64)
     y = y[None] if y.ndim == 2 else y
     v = np.broadcast_to(np.asarray(variance, dtype=np.float64), y.shape)
@@ -609,9 +613,12 @@ def _sure_blocks(observed, variance, crop, crops):
     if y.shape[0] == 1 and len(wins) > 1:
         # the windows of a 2-D image side by side as planes of one lattice without z
         # cliques: independent posteriors, sampled in one run on every thread
-        return [(np.stack([y[0, si, sj] for si, sj in wins]),
-                 np.stack([v[0, si, sj] for si, sj in wins]), 0.0)]
-    return [(y[zs, si, sj], v[zs, si, sj], None) for si, sj in wins]
+        blocks = [(np.stack([y[0, si, sj] for si, sj in wins]),
+                   np.stack([v[0, si, sj] for si, sj in wins]), 0.0)]
+    else:
+        blocks = [(y[zs, si, sj], v[zs, si, sj], None) for si, sj in wins]
+    return [(yc, vc, sz, [ndimage.gaussian_filter(yc, (0.0, w, w)) for w in SURE_START_WIDTHS])
+            for yc, vc, sz in blocks]
 
 
 def _sure_risk(blocks, prior, *, seed, burn_in, samples, chains, tol):
@@ -623,9 +630,9 @@ def _sure_risk(blocks, prior, *, seed, burn_in, samples, chains, tol):
         raise ValueError(f"chains must be in 1..{len(SURE_START_WIDTHS)}, got {chains}")
 
     tot, n = 0.0, 0
-    for k, (yc, vc, _) in enumerate(blocks):
-        x0 = [ndimage.gaussian_filter(yc, (0.0, w, w)) for w in SURE_START_WIDTHS[:chains]]
-        m = GreyModel(yc, variance=vc, prior=prior, tol=tol, sample_tol=max(tol, 1e-2), starts=x0)
+    for k, (yc, vc, _, starts) in enumerate(blocks):
+        m = GreyModel(yc, variance=vc, prior=prior, tol=tol, sample_tol=max(tol, 1e-2),
+                      starts=starts[:chains])
         run = sampler.run(m, sweeps=burn_in + samples, burn_in=burn_in, chains=chains,
                           seed=seed + k, tally=True)
         tot += sure(yc, run.tally.mean64(), run.tally.var64(), vc) * yc.size
