@@ -276,7 +276,7 @@ def test_window_risk_matches_exact_sure_of_a_quadratic_prior(chains):
     x = 0.5 + 0.3 * np.sin(ii / 5.0) * np.cos(jj / 7.0)
     s, lam, c = 0.1, 0.7, 300.0
     y = (x + s * gen.standard_normal(x.shape))[None]
-    blocks = _sure_blocks(y, s * s, 32, 4)
+    blocks = _sure_blocks(y, s * s, 32, 4, chains)
     assert blocks[0][0].shape == (4, 32, 32) and blocks[0][2] == 0.0
     prior = GSMPrior.quadratic(c, neighbourhood="4").with_strength(lam, 0.0)
     got = _sure_risk(blocks, prior, seed=3, burn_in=1, samples=120 // chains, chains=chains,

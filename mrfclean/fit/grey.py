@@ -587,7 +587,7 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
     """
     if not (step > 1 and 0 < bounds[0] <= start <= bounds[1]):
         raise ValueError(f"need step > 1 and bounds[0] <= start <= bounds[1], got {step}, {bounds}, {start}")
-    blocks = _sure_blocks(observed, variance, crop, crops)
+    blocks = _sure_blocks(observed, variance, crop, crops, chains)
 
     def risk(lam):
         return _sure_risk(blocks, prior.with_strength(float(lam), blocks[0][2]), seed=seed,
@@ -597,12 +597,15 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
     return StrengthFit(best, table)
 
 
-def _sure_blocks(observed, variance, crop, crops):
+def _sure_blocks(observed, variance, crop, crops, chains):
     """The SURE windows of an image: ``[(y, v, strength_z, starts)]`` (see :func:`choose_strength`).
 
-    ``starts`` are the windows smoothed by each of :data:`SURE_START_WIDTHS`,
-    made once here for every risk of a search.
+    ``starts`` are the windows smoothed by the first ``chains`` of
+    :data:`SURE_START_WIDTHS` (one start per chain), made once here for every
+    risk of a search.
     """
+    if not 1 <= chains <= len(SURE_START_WIDTHS):
+        raise ValueError(f"chains must be in 1..{len(SURE_START_WIDTHS)}, got {chains}")
     y = np.asarray(observed, dtype=np.float64)
     y = y[None] if y.ndim == 2 else y
     v = np.broadcast_to(np.asarray(variance, dtype=np.float64), y.shape)
@@ -617,7 +620,8 @@ def _sure_blocks(observed, variance, crop, crops):
                    np.stack([v[0, si, sj] for si, sj in wins]), 0.0)]
     else:
         blocks = [(y[zs, si, sj], v[zs, si, sj], None) for si, sj in wins]
-    return [(yc, vc, sz, [ndimage.gaussian_filter(yc, (0.0, w, w)) for w in SURE_START_WIDTHS])
+    return [(yc, vc, sz, [ndimage.gaussian_filter(yc, (0.0, w, w))
+                          for w in SURE_START_WIDTHS[:chains]])
             for yc, vc, sz in blocks]
 
 
@@ -626,11 +630,10 @@ def _sure_risk(blocks, prior, *, seed, burn_in, samples, chains, tol):
     from .. import sampler
     from ..models.grey import GreyModel
 
-    if not 1 <= chains <= len(SURE_START_WIDTHS):
-        raise ValueError(f"chains must be in 1..{len(SURE_START_WIDTHS)}, got {chains}")
-
     tot, n = 0.0, 0
     for k, (yc, vc, _, starts) in enumerate(blocks):
+        if len(starts) < chains:
+            raise ValueError(f"windows made for {len(starts)} chains, asked for {chains}")
         m = GreyModel(yc, variance=vc, prior=prior, tol=tol, sample_tol=max(tol, 1e-2),
                       starts=starts[:chains])
         run = sampler.run(m, sweeps=burn_in + samples, burn_in=burn_in, chains=chains,
@@ -726,7 +729,7 @@ def choose_curvature(observed, variance, prior: GSMPrior, *, start, step=4.0, no
         The weight (0: none), the strength it was chosen at, and every
         ``(weight, risk)`` tried (weight 0 at the prior's own strength).
     """
-    blocks = _sure_blocks(observed, variance, crop, crops)
+    blocks = _sure_blocks(observed, variance, crop, crops, chains)
     sz = blocks[0][2]
     prior = prior.with_curvature(0.0)
     if none_risk is None:
