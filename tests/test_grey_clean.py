@@ -263,9 +263,9 @@ def test_window_risk_matches_exact_sure_of_a_quadratic_prior(chains):
     2005, ch. 2).  The sampled mean is the exact conditional mean (one scale), so
     only the summed variance is Monte-Carlo, and it is 4.7 times the risk here:
     120 kept draws per pixel give the risk a relative sd of 1.2-1.6% (8 seeds).
-    The draws' solves stop at relative residual 1e-2, which loses about 0.4% of
-    the variance, so the risk reads 1.7-1.8% low on average (measured).
-    Tolerance 7%: that bias plus 3 sd."""
+    The draws solve to the same tolerance as the means (1e-7 here); when they
+    stopped at 1e-2 they lost about 0.4% of the variance and the risk read
+    1.7-1.8% low on average (measured).  Tolerance 7%: 3 sd plus that margin."""
     from test_grey_gmrf import difference_matrices
 
     from mrfclean.fit.grey import _sure_blocks, _sure_risk
