@@ -338,7 +338,7 @@ def test_sure_curvature_choice_against_exact_posterior_means(scene_kind):
 
 def test_curvature_walk_trades_strength_for_weight_against_exact_posterior_means():
     """The two-parameter walk of :func:`choose_curvature` (strength down by 3, weight up by 4
-    along the diagonal, then the weight alone) with a quadratic pairwise prior, so that every
+    along the diagonal; the weight alone only if that did not move) with a quadratic pairwise prior, so that every
     lattice point's posterior mean is linear in y and its true MSE is computed exactly by a
     sparse solve (Rue & Held 2005, ch. 2).  The smooth scene wants most of its smoothing from
     the curvature term: the walk must leave the first point (a third of the pairwise
