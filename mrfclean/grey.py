@@ -490,12 +490,13 @@ def sample_block(y, setup: GreySetup, *, method="mean", schedule=None, sweeps=No
     """
     u, var_u = setup.observed(y)
     grid = Grid.for_image(u)
+    burn_in = int(DEFAULT_BURN_IN if burn_in is None else burn_in)
     model = GreyModel(u, variance=var_u, prior=setup.prior,
                       starts=[_smooth(u, w) for w in START_WIDTHS],
-                      tol=tol, sample_tol=max(tol, DEFAULT_SAMPLE_TOL), grid=grid)
+                      tol=tol, sample_tol=max(tol, DEFAULT_SAMPLE_TOL), grid=grid,
+                      single_solves=burn_in)
     diag = Diagnostics()
     params = dict(model.describe())
-    burn_in = int(DEFAULT_BURN_IN if burn_in is None else burn_in)
     samples = int(samples or DEFAULT_SAMPLES)
     if method == "map":
         schedule = schedule or Geometric(1.0, 0.01)

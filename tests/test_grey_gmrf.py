@@ -269,6 +269,28 @@ def test_loose_draw_solves_read_a_stiff_posterior_variance_low(sample_tol, low, 
     assert low < run.tally.var64().sum() / exact < high
 
 
+def test_single_system_draws_follow_the_exact_gmrf(gmrf_case):
+    """Burn-in sweeps draw the image from one system ``Q x = b + eta`` started at the
+    current image (``single_solves``).  Solved tightly, each draw is an exact independent
+    draw from ``N(Q^-1 b, Q^-1)`` (Papandreou & Yuille 2010), checked against the
+    scipy mean and dense-inverse variances: over S = 400 draws the average ratio of
+    sampled to exact variance has sd sqrt(2/S)/sqrt(1024) = 0.002 (a few times that
+    with neighbour correlation; tolerance 0.03), and the squared standardised error of
+    the draws' average, ``(xbar - m)^2 S / var``, is chi-square(1) per pixel, so its
+    average over 1024 pixels is 1 with sd 0.044 (tolerance 0.3)."""
+    model, mean, var = gmrf_case
+    m = GreyModel(model.y, variance=1.0 / model.dw, prior=model.prior, tol=1e-9,
+                  single_solves=10**6)
+    S = 400
+    xs = np.empty((S, mean.size))
+    for st in sampler.iterate(m, sampler.Constant(1.0), sweeps=S + 5, chain=0, seed=11, burn_in=5):
+        if st.sampling:
+            xs[st.sweep - 5] = st.state.x.ravel()
+    assert st.state.draws == S + 5
+    assert abs((xs.var(axis=0, ddof=1) / var).mean() - 1) < 0.03
+    assert abs(((xs.mean(axis=0) - mean) ** 2 * S / var).mean() - 1) < 0.3
+
+
 def test_sweep_independent_of_thread_count():
     """Counter-based random numbers and ordered row sums: 1 thread and 2 threads agree bit for bit."""
     gen = np.random.default_rng(3)

@@ -290,7 +290,7 @@ class GreyState:
     and ``energy`` the energy of ``x``, computed in the same pass.
     """
 
-    __slots__ = ("x", "mu", "energy", "iterations", "comp")
+    __slots__ = ("x", "mu", "energy", "iterations", "comp", "draws")
 
     def __init__(self, x, mu=None):
         self.x = np.ascontiguousarray(x, dtype=np.float64)
@@ -298,6 +298,7 @@ class GreyState:
         self.energy = None
         self.iterations = 0
         self.comp = None
+        self.draws = 0  # image updates at temperature > 0 so far
 
 
 class GreyTally(Tally):
@@ -382,6 +383,14 @@ class GreyModel(ChainModel):
         The same for the perturbation system of a draw (default ``tol``).
     max_iter : int
         Iteration cap per solve (reported in :attr:`stats`).
+    single_solves : int
+        The first ``single_solves`` temperature > 0 sweeps of each chain (its
+        burn-in: nothing tallies them) draw the image from the one system
+        ``Q x = b + eta``, started at the current image, to ``sample_tol``,
+        and skip the conditional mean; later sweeps solve the mean and the
+        perturbation separately, as the Rao-Blackwellised tally needs.  Solved
+        exactly, the draws have the same distribution; such a sweep ran 6-19%
+        faster on SURE's windows (measured on camera and cell at 512^2).
 
     Notes
     -----
@@ -403,7 +412,7 @@ class GreyModel(ChainModel):
     """
 
     def __init__(self, observed, *, variance, prior: GSMPrior, starts=None, tol=1e-3,
-                 sample_tol=None, max_iter=500, grid: Grid | None = None):
+                 sample_tol=None, max_iter=500, grid: Grid | None = None, single_solves=0):
         y = np.asarray(observed, dtype=np.float64)
         self.grid = grid or Grid.for_image(y)
         if self.grid.periodic:
@@ -430,6 +439,7 @@ class GreyModel(ChainModel):
         self.mean_tol = self.tol if bnorm == 0 else max(MIN_TOL, min(
             self.tol, MEAN_ERROR_SHARE * math.sqrt(float(self.dw.sum())) / bnorm))
         self.max_iter = int(max_iter)
+        self.single_solves = int(single_solves)
         self.starts = [np.asarray(s, dtype=np.float64).reshape(self.grid.shape)
                        for s in (starts if starts is not None else [self.y])]
         n = len(self.offsets)
@@ -525,9 +535,16 @@ class GreyModel(ChainModel):
                                       kernels.derive_key(np.uint64(key), kernels._GREY_NOISE_SALT),
                                       math.sqrt(temperature), self._rhs[1], self._pbuf,
                                       self.curv, self._cbuf)
-            X, it = self.solve(self._rhs, (state.mu, 0.0), (self.mean_tol, self.sample_tol))
-            state.mu[...] = X[0]
-            np.add(X[0], X[1], out=state.x)
+            if state.draws < self.single_solves:
+                np.add(self._rhs[0], self._rhs[1], out=self._rhs[1])
+                X, it = self.solve(self._rhs[1:], (state.x,), (self.sample_tol,))
+                state.x[...] = X[0]
+                state.mu[...] = X[0]  # not a conditional mean: only the next solve's start
+            else:
+                X, it = self.solve(self._rhs, (state.mu, 0.0), (self.mean_tol, self.sample_tol))
+                state.mu[...] = X[0]
+                np.add(X[0], X[1], out=state.x)
+            state.draws += 1
         else:
             X, it = self.solve(self.b[None], state.mu[None])
             state.mu[...] = X[0]
