@@ -290,6 +290,26 @@ def test_window_risk_matches_exact_sure_of_a_quadratic_prior(chains):
     assert got == pytest.approx(np.mean(risks), rel=0.07)
 
 
+def exact_quadratic_mse(x, y, s):
+    """``mse(lam, kappa)``: the true MSE of the posterior mean of a quadratic 4-neighbour
+    prior of strength ``lam`` plus ``kappa`` times the squared second differences, by a
+    sparse solve (linear in y; Rue & Held 2005, ch. 2)."""
+    import scipy.sparse as sp
+    import scipy.sparse.linalg as sla
+    from test_grey_gmrf import difference_matrices, second_difference_matrix
+
+    H, W = x.shape
+    L = sum(D.T @ D for _, D in difference_matrices((1, H, W), [(0, 0, 1), (0, 1, 0)])).tocsc()
+    C = second_difference_matrix((1, H, W))
+    C = (C.T @ C).tocsc()
+
+    def mse(lam, kappa):
+        Q = sp.identity(H * W, format="csc") / s**2 + lam * L + kappa * C
+        return float(np.mean((sla.spsolve(Q, y.ravel() / s**2) - x.ravel()) ** 2))
+
+    return mse
+
+
 @pytest.mark.parametrize("scene_kind", ["smooth", "steps"])
 def test_sure_curvature_choice_against_exact_posterior_means(scene_kind):
     """The second-difference weight chosen by SURE, with a quadratic pairwise prior at a fixed
@@ -298,31 +318,22 @@ def test_sure_curvature_choice_against_exact_posterior_means(scene_kind):
     (sines) the term helps, and the chosen weight must reach within 2% of the best MSE over
     a fine grid (the walk's factor-4 grid and its parabolic refinement); on a scene of flat
     steps it only blurs the steps, and SURE must leave it out (weight 0)."""
-    import scipy.sparse as sp
-    import scipy.sparse.linalg as sla
-    from test_grey_gmrf import difference_matrices, second_difference_matrix
-
     from mrfclean.fit.grey import choose_curvature
     from mrfclean.models.grey import GSMPrior
 
     gen = np.random.default_rng(41)
-    H = W = 48
-    ii, jj = np.mgrid[0:H, 0:W]
+    ii, jj = np.mgrid[0:48, 0:48]
     if scene_kind == "smooth":
         x = 0.5 + 0.3 * np.sin(ii / 6.0) * np.cos(jj / 9.0)
     else:
         x = 0.2 + 0.6 * (((ii // 12) + (jj // 12)) % 2)
     s = 0.1
     y = x + s * gen.standard_normal(x.shape)
-    n = H * W
-    L = sum(D.T @ D for _, D in difference_matrices((1, H, W), [(0, 0, 1), (0, 1, 0)])).tocsc()
-    C = second_difference_matrix((1, H, W))
-    C = (C.T @ C).tocsc()
     lam = 60.0
+    exact = exact_quadratic_mse(x, y, s)
 
     def mse(kappa):
-        Q = sp.identity(n, format="csc") / s**2 + lam * L + kappa * C
-        return float(np.mean((sla.spsolve(Q, y.ravel() / s**2) - x.ravel()) ** 2))
+        return exact(lam, kappa)
 
     prior = GSMPrior.quadratic(1.0, neighbourhood="4").with_strength(lam)
     fit = choose_curvature(y, s * s, prior, start=2.0 / s**2, strength_factor=1.0, shift=1.0,
@@ -338,34 +349,22 @@ def test_sure_curvature_choice_against_exact_posterior_means(scene_kind):
 
 def test_curvature_walk_trades_strength_for_weight_against_exact_posterior_means():
     """The two-parameter walk of :func:`choose_curvature` (strength down by 3, weight up by 4
-    along the diagonal; the weight alone only if that did not move) with a quadratic pairwise prior, so that every
-    lattice point's posterior mean is linear in y and its true MSE is computed exactly by a
-    sparse solve (Rue & Held 2005, ch. 2).  The smooth scene wants most of its smoothing from
+    along the diagonal; the weight alone only if that did not move) with a quadratic
+    pairwise prior, so that every lattice point's posterior mean is linear in y and its
+    true MSE is computed exactly by a sparse solve (Rue & Held 2005, ch. 2).  The smooth scene wants most of its smoothing from
     the curvature term: the walk must leave the first point (a third of the pairwise
     strength that is best alone) and end within 3% of the best MSE on its own lattice.  The
     3% allows for SURE's Monte-Carlo error between neighbouring points (30 kept sweeps,
     common random numbers), which on this scene is under 1% of the risk."""
-    import scipy.sparse as sp
-    import scipy.sparse.linalg as sla
-    from test_grey_gmrf import difference_matrices, second_difference_matrix
-
     from mrfclean.fit.grey import choose_curvature
     from mrfclean.models.grey import GSMPrior
 
     gen = np.random.default_rng(47)
-    H = W = 48
-    ii, jj = np.mgrid[0:H, 0:W]
+    ii, jj = np.mgrid[0:48, 0:48]
     x = 0.5 + 0.3 * np.sin(ii / 6.0) * np.cos(jj / 9.0) + 0.1 * np.sin((ii + jj) / 4.0)
     s = 0.1
     y = x + s * gen.standard_normal(x.shape)
-    n = H * W
-    L = sum(D.T @ D for _, D in difference_matrices((1, H, W), [(0, 0, 1), (0, 1, 0)])).tocsc()
-    C = second_difference_matrix((1, H, W))
-    C = (C.T @ C).tocsc()
-
-    def mse(lam, kappa):
-        Q = sp.identity(n, format="csc") / s**2 + lam * L + kappa * C
-        return float(np.mean((sla.spsolve(Q, y.ravel() / s**2) - x.ravel()) ** 2))
+    mse = exact_quadratic_mse(x, y, s)
 
     lam_alone = min(2.0 ** np.arange(0, 12.01, 0.25), key=lambda l: mse(l, 0.0))
     prior = GSMPrior.quadratic(1.0, neighbourhood="4").with_strength(lam_alone)
