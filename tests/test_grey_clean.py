@@ -91,6 +91,23 @@ def test_quench_never_raises_energy():
     assert m.energy(st) <= e0
 
 
+def test_shipped_prior_loads_when_the_package_is_seen_through_two_folders(tmp_path, monkeypatch):
+    """A leftover ``mrfclean`` folder (numba's cache files stay behind when a regular install
+    is removed) makes importlib see the package through a MultiplexedPath, whose
+    ``joinpath`` takes one part at a time on Python 3.11: the shipped prior must load."""
+    from importlib import resources
+    from importlib.resources.readers import MultiplexedPath
+    from pathlib import Path
+
+    import mrfclean
+
+    want = GSMPrior.load().to_dict()
+    (tmp_path / "__pycache__").mkdir()
+    both = MultiplexedPath(tmp_path, Path(mrfclean.__file__).parent)
+    monkeypatch.setattr(resources, "files", lambda package: both)
+    assert GSMPrior.load().to_dict() == want
+
+
 def test_score_matching_gradient_matches_finite_differences():
     """Analytic gradient of the score-matching loss (Hyvärinen 2005, eq. 4) against
     central differences (step 1e-6; agreement to 1e-6 relative, limited by round-off)."""

@@ -176,7 +176,10 @@ class GSMPrior:
     def load(cls, path=None):
         """The learned prior shipped with the package (or one saved at ``path``)."""
         if path is None:
-            text = resources.files("mrfclean").joinpath("data", PRIOR_FILE).read_text()
+            # one part per step: a package seen through two folders (a leftover folder of
+            # numba cache files after an uninstall) is a MultiplexedPath, whose joinpath
+            # takes a single part on Python 3.11
+            text = (resources.files("mrfclean") / "data" / PRIOR_FILE).read_text()
         else:
             with open(path) as f:
                 text = f.read()
