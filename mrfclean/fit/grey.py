@@ -792,10 +792,8 @@ def choose_curvature(observed, variance, prior: GSMPrior, *, start, step=4.0, sh
         if not risk(*nxt) < risk(*cur):
             break
         cur = nxt
-    for d in ((1, -1) if cur == (0, 0) else ()):
-        moved = False
-        while jmin <= cur[1] + d <= jmax and risk(cur[0], cur[1] + d) < risk(*cur):
-            cur, moved = (cur[0], cur[1] + d), True
-        if moved:
-            break
+    if cur == (0, 0):  # the weight alone, as choose_strength walks the strength
+        kappa, _ = _geometric_walk(lambda v: risk(0, round(math.log(v / start, step))), start,
+                                   step, (start * step**jmin, start * step**jmax), False)
+        cur = (0, round(math.log(kappa / start, step)))
     return fit(cur)
