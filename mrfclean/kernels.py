@@ -701,6 +701,8 @@ _GSM_ENERGY = 2
 _EMPTY4 = np.zeros((0, 0, 0, 0))
 _EMPTY4U = np.zeros((0, 0, 0, 0), np.uint8)
 _EMPTY2 = np.zeros((0, 0))
+_EMPTY3 = np.zeros((0, 0, 0))
+_EMPTY_OFFSETS = np.zeros((0, 3), np.int64)
 #: The ladder path takes a clique's sum only above this (a smaller one, or a
 #: running product leaving [_PROD_LO, _PROD_HI], goes the general way / is logged).
 _LADDER_TINY = 1e-100
@@ -746,7 +748,8 @@ def _pick(lp, u):
 
 
 @njit(inline="always", cache=True)
-def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, draw, buf):
+def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, draw, buf,
+                 grow, gnrow, scaled):
     """Draw at T = 1 of the cliques ``(j, j + dj)``, ``j`` in ``range(lo, hi)``, on the 4^c ladder.
 
     Returns their prior energy (scales summed out); with ``draw`` False only
@@ -755,7 +758,9 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
     one scale at a time, so those loops vectorise; each clique's arithmetic is
     the same as one at a time.  A clique whose sum is below
     :data:`_LADDER_TINY` (all scales far in the tail) takes the general path
-    of :func:`_gsm_clique`.
+    of :func:`_gsm_clique`.  With ``scaled``, each clique's squared difference
+    is multiplied by the mean of the prior scales ``grow[j]`` and
+    ``gnrow[j + dj]`` of its two pixels (see :func:`gsm_draw_components`).
     """
     K = am.shape[0]
     lmax = la[0]
@@ -770,6 +775,11 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
     for t in range(n):
         d = nv[t] - xv[t]
         d2v[t] = d * d
+    if scaled:
+        gv = grow[lo:hi]
+        gnv = gnrow[lo + dj:hi + dj]
+        for t in range(n):
+            d2v[t] *= 0.5 * (gv[t] + gnv[t])
     for t in range(n):
         ev[t] = np.exp(g * d2v[t])
     for c in range(K):  # buf[1 + c] = sum of the first c + 1 terms am[c'] e^(4^c')
@@ -816,7 +826,7 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
 
 @njit(parallel=True, cache=True)
 def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode, w, comp, rows,
-              amp=_EMPTY2):
+              amp=_EMPTY2, gs=_EMPTY3):
     """Shared body of :func:`gsm_draw_components`, :func:`gsm_mean_weights` and the energy.
 
     Rows of the lattice are independent: row ``(z, i)`` owns the cliques whose
@@ -831,8 +841,12 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
     ``e^(4^c)`` with ``e = exp(-lam prec[0] d^2 / 2)``: one exp and two
     squarings per scale instead of an exp per scale, and the logs of the
     clique sums are taken on their running product.
+
+    ``gs`` (empty: none): per-pixel prior scales; clique ``(p, p + o)`` then
+    has precisions ``strength[o] prec[o, c] (gs[p] + gs[p + o]) / 2``.
     """
     Z, H, W = x.shape
+    scaled = gs.shape[0] > 0
     n = offsets.shape[0]
     K = logamp.shape[1]
     N = Z * H * W
@@ -876,22 +890,27 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
             if hi <= lo:
                 continue
             nrow = x[zf, i_f]
+            grow = gs[z, i] if scaled else xrow
+            gnrow = gs[zf, i_f] if scaled else nrow
             la = logamp[o]
             pr = prec[o]
             base = o * N + (z * H + i) * W
             if fast:
                 acc += _ladder_draw(xrow, nrow, dj, lo, hi, amp[o], la, pr, lam, key, base,
-                                    comp[o, z, i] if draw else nocomp, lp, draw, scratch)
+                                    comp[o, z, i] if draw else nocomp, lp, draw, scratch,
+                                    grow, gnrow, scaled)
                 continue
             for j in range(lo, hi):
                 d = nrow[j + dj] - xrow[j]
                 d2 = d * d
+                ms = 0.5 * (grow[j] + gnrow[j + dj]) if scaled else 1.0
+                d2 *= ms
                 if mode == _GSM_MEAN:
                     m, tot, c = _gsm_clique(la, pr, lam, d2, 1.0, lp)
                     num = 0.0
                     for c in range(K):
                         num += lp[c] * pr[c]
-                    wrow[j] = lam * num / tot
+                    wrow[j] = lam * ms * num / tot
                     continue
                 m, tot, c = _gsm_clique(la, pr, lam, d2, it if draw else 1.0, lp)
                 if draw:
@@ -904,7 +923,8 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
         rows[k] = acc
 
 
-def gsm_draw_components(x, y, dw, offsets, logamp, prec, strength, temperature, key, comp):
+def gsm_draw_components(x, y, dw, offsets, logamp, prec, strength, temperature, key, comp,
+                        scale=None):
     """Draw every clique's scale given the image; return the energy of the image.
 
     Clique ``(o, p)`` with difference ``d`` takes component ``c`` with probability
@@ -913,7 +933,10 @@ def gsm_draw_components(x, y, dw, offsets, logamp, prec, strength, temperature, 
     lattice), and :func:`gsm_expand` turns it into the weight
     ``strength[o] * prec[o, c]`` (the tempered image update then scales the
     whole precision by ``1/T`` itself).  At ``T = 0`` the most probable
-    component is taken (the half-quadratic choice).
+    component is taken (the half-quadratic choice).  ``scale`` (optional,
+    shape of ``x``): per-pixel prior scales ``g``; clique ``(p, p + o)`` then
+    has precisions ``strength[o] prec[o, c] (g[p] + g[p + o]) / 2``, in the
+    draw, the energy and (given the same ``scale``) :func:`gsm_expand`.
 
     Returns ``E(x)``: the prior energy with the scales summed out, at
     temperature 1, plus the data energy ``sum (x - y)^2 dw / 2`` -- computed
@@ -922,7 +945,7 @@ def gsm_draw_components(x, y, dw, offsets, logamp, prec, strength, temperature, 
     rows = np.empty(x.shape[0] * x.shape[1])
     amp = _ladder_amplitudes(logamp, prec) if float(temperature) == 1.0 else _EMPTY2
     _gsm_rows(x, y, dw, offsets, logamp, prec, strength, float(temperature), np.uint64(key),
-              _GSM_DRAW, _EMPTY4, comp, rows, amp)
+              _GSM_DRAW, _EMPTY4, comp, rows, amp, _EMPTY3 if scale is None else scale)
     return _ordered_sum(rows)
 
 
@@ -972,9 +995,9 @@ def _plane_row(k, Z, H):
 
 
 @njit(parallel=True, cache=True)
-def gsm_expand(comp, prec, strength, w):
-    """``w[o, p] = strength[o] * prec[o, comp[o, p]]`` (0 where ``comp`` is :data:`NO_CLIQUE`)."""
+def _gsm_expand(comp, prec, strength, w, offsets, gs):
     n, Z, H, W = comp.shape
+    scaled = gs.shape[0] > 0
     for k in prange(n * Z * H):
         o, z, i = _plane_row(k, Z, H)
         crow = comp[o, z, i]
@@ -983,9 +1006,33 @@ def gsm_expand(comp, prec, strength, w):
         for j in range(W):
             c = crow[j]
             wrow[j] = 0.0 if c == NO_CLIQUE else lam * prec[o, c]
+        if scaled:
+            zf = z + offsets[o, 0]
+            i_f = i + offsets[o, 1]
+            if not (0 <= zf < Z and 0 <= i_f < H):
+                continue
+            dj = offsets[o, 2]
+            lo, hi = _span(dj, W)
+            grow = gs[z, i]
+            gnrow = gs[zf, i_f]
+            for j in range(lo, hi):
+                wrow[j] *= 0.5 * (grow[j] + gnrow[j + dj])
 
 
-def gsm_mean_weights(x, offsets, logamp, prec, strength, w):
+def gsm_expand(comp, prec, strength, w, offsets=None, scale=None):
+    """``w[o, p] = strength[o] * prec[o, comp[o, p]]`` (0 where ``comp`` is :data:`NO_CLIQUE`).
+
+    With per-pixel prior scales ``scale`` (and the ``offsets`` they need) the
+    weight of clique ``(p, p + o)`` is also multiplied by ``(scale[p] +
+    scale[p + o]) / 2``, as in :func:`gsm_draw_components`.
+    """
+    if scale is None:
+        _gsm_expand(comp, prec, strength, w, _EMPTY_OFFSETS, _EMPTY3)
+    else:
+        _gsm_expand(comp, prec, strength, w, offsets, scale)
+
+
+def gsm_mean_weights(x, offsets, logamp, prec, strength, w, scale=None):
     """Posterior-mean precision of every clique given the image (half-quadratic weights).
 
     ``w[o, p] = strength[o] * E[prec | d]``, the weight of one iteratively
@@ -994,14 +1041,19 @@ def gsm_mean_weights(x, offsets, logamp, prec, strength, w):
     """
     rows = np.empty(x.shape[0] * x.shape[1])
     _gsm_rows(x, x, x, offsets, logamp, prec, strength, 1.0, np.uint64(0), _GSM_MEAN, w,
-              _EMPTY4U, rows)
+              _EMPTY4U, rows, _EMPTY2, _EMPTY3 if scale is None else scale)
 
 
-def gsm_prior_energy(x, offsets, logamp, prec, strength):
-    """``-sum_cliques log sum_c exp(logamp[o, c] - strength[o] prec[o, c] d^2 / 2)``."""
+def gsm_prior_energy(x, offsets, logamp, prec, strength, scale=None):
+    """``-sum_cliques log sum_c exp(logamp[o, c] - strength[o] prec[o, c] m d^2 / 2)``.
+
+    ``m`` is 1, or with per-pixel prior scales ``scale`` the mean of the
+    clique's two scales (see :func:`gsm_draw_components`).
+    """
     rows = np.empty(x.shape[0] * x.shape[1])
     _gsm_rows(x, x, x, offsets, logamp, prec, strength, 1.0, np.uint64(0), _GSM_ENERGY,
-              _EMPTY4, _EMPTY4U, rows, _ladder_amplitudes(logamp, prec))
+              _EMPTY4, _EMPTY4U, rows, _ladder_amplitudes(logamp, prec),
+              _EMPTY3 if scale is None else scale)
     return _ordered_sum(rows)
 
 

@@ -132,6 +132,15 @@ class GSMPrior:
         ``kappa / 2 sum (x[p] - 2 x[p + e] + x[p + 2 e])^2`` along rows and
         columns (0 = none).  It favours smooth ramps over flat steps; the
         cleaner chooses it per image (see :func:`mrfclean.fit.grey.choose_curvature`).
+    noise_ref : float
+        0 (default): the precisions are the same at every pixel.  ``> 0``: the
+        prior acts on the noise-stabilised image, linearised at the noise
+        variance ``v`` the data term uses: a clique's precisions are multiplied
+        by ``noise_ref / v`` (the mean of that factor at its two pixels), so
+        that under signal-dependent noise the prior smooths each region in
+        proportion to its own noise, as a prior on the variance-stabilised
+        image ``f(x)``, ``f' = 1 / sqrt(v)``, would (Anscombe 1948; Makitalo &
+        Foi 2013).  With a constant ``v = noise_ref`` nothing changes.
     units : float
         Intensity span the potentials were learned for (differences are
         measured in units of the image's range divided by this).
@@ -142,9 +151,10 @@ class GSMPrior:
     strength_z: float = 1.0
     curvature: float = 0.0
     meta: dict = field(default_factory=dict, compare=False)
+    noise_ref: float = 0.0
 
     def __post_init__(self):
-        for name in ("strength", "strength_z", "curvature"):
+        for name in ("strength", "strength_z", "curvature", "noise_ref"):
             v = getattr(self, name)
             if not (math.isfinite(v) and v >= 0):
                 raise ValueError(f"{name} must be a non-negative finite number, got {v!r}")
@@ -195,10 +205,15 @@ class GSMPrior:
     def with_strength(self, strength, strength_z=None):
         return GSMPrior(self.groups, float(strength),
                         self.strength_z if strength_z is None else float(strength_z),
-                        self.curvature, self.meta)
+                        self.curvature, self.meta, self.noise_ref)
 
     def with_curvature(self, curvature):
-        return GSMPrior(self.groups, self.strength, self.strength_z, float(curvature), self.meta)
+        return GSMPrior(self.groups, self.strength, self.strength_z, float(curvature), self.meta,
+                        self.noise_ref)
+
+    def with_noise_ref(self, noise_ref):
+        return GSMPrior(self.groups, self.strength, self.strength_z, self.curvature, self.meta,
+                        float(noise_ref))
 
     # --- kernel arrays -------------------------------------------------------------
     def arrays(self, planes: int):
@@ -231,7 +246,8 @@ class GSMPrior:
         return {"prior": "gsm", "strength": float(self.strength),
                 "strength_z": float(self.strength_z), "curvature": float(self.curvature),
                 "offsets": [list(o) for g in self.groups for o in g.offsets],
-                "scales": len(self.groups[0].prec), "prior_source": self.meta.get("source", "given")}
+                "scales": len(self.groups[0].prec), "prior_source": self.meta.get("source", "given"),
+                **({"noise_ref": float(self.noise_ref)} if self.noise_ref else {})}
 
 
 # ---------------------------------------------------------------------------------------
@@ -428,6 +444,8 @@ class GreyModel(ChainModel):
             raise ValueError("noise variance must be positive and finite everywhere")
         self.dw = np.ascontiguousarray(1.0 / v)
         self.b = self.dw * self.y
+        # per-pixel factor on the prior's precisions (see GSMPrior.noise_ref)
+        self.gs = prior.noise_ref * self.dw if prior.noise_ref > 0 else None
         self.prior = prior
         Z = self.grid.shape[0]
         self.offsets, self.logamp, self.prec, self.strength = prior.arrays(Z)
@@ -506,7 +524,7 @@ class GreyModel(ChainModel):
             state.comp = np.empty(self.w.shape, np.uint8)
         state.energy = float(kernels.gsm_draw_components(
             state.x, self.y, self.dw, self.offsets, self.logamp, self.prec, self.strength,
-            float(temperature), np.uint64(key), state.comp)) + self._curv_energy(state.x)
+            float(temperature), np.uint64(key), state.comp, self.gs)) + self._curv_energy(state.x)
 
     def _curv_energy(self, x):
         """``kappa / 2`` times the summed squared in-plane second differences of ``x``."""
@@ -527,7 +545,7 @@ class GreyModel(ChainModel):
         if state.comp is None:
             self._draw_scales(state, temperature,
                               kernels.derive_key(np.uint64(key), kernels._GREY_START_SALT))
-        kernels.gsm_expand(state.comp, self.prec, self.strength, self.w)
+        kernels.gsm_expand(state.comp, self.prec, self.strength, self.w, self.offsets, self.gs)
         self._set_operator()
         if temperature > 0:
             if self._pbuf is None:
@@ -566,7 +584,7 @@ class GreyModel(ChainModel):
         state.mu[...] = state.x
         for k in range(1, max_passes + 1):
             kernels.gsm_mean_weights(state.x, self.offsets, self.logamp, self.prec,
-                                     self.strength, self.w)
+                                     self.strength, self.w, self.gs)
             self._set_operator()
             X, _ = self.solve(self.b[None], state.x[None])
             e_new = self.energy_of(X[0])
@@ -602,7 +620,7 @@ class GreyModel(ChainModel):
     def prior_energy_of(self, x) -> float:
         x = self._as_image(x)
         return float(kernels.gsm_prior_energy(x, self.offsets, self.logamp, self.prec,
-                                              self.strength)) + self._curv_energy(x)
+                                              self.strength, self.gs)) + self._curv_energy(x)
 
     def data_energy_of(self, x) -> float:
         r = self._as_image(x) - self.y
