@@ -623,11 +623,13 @@ def _shifted_add(out, src, lo, hi, s):
 
 
 @njit(parallel=True, cache=True)
-def gmrf_matvec(x, w, offsets, dw, curv, out, rows):
-    """``out = Q x`` with ``Q = diag(dw) + sum_o D_o^T diag(w_o) D_o + curv C^T C``, for a batch of images.
+def gmrf_matvec(x, w, offsets, dw, curv, cs, out, rows):
+    """``out = Q x`` with ``Q = diag(dw) + sum_o D_o^T diag(w_o) D_o + curv C^T S C``, for a batch of images.
 
     ``C`` stacks the in-plane second differences ``Dxx`` and ``Dyy`` (see
-    :func:`_curv_row`; no term when ``curv = 0``).  ``x`` and ``out`` have shape
+    :func:`_curv_row`; no term when ``curv = 0``); ``S`` weights each triple by
+    ``cs`` at its middle pixel (:func:`_curv_row_scaled`), or is the identity when
+    ``cs`` is empty.  ``x`` and ``out`` have shape
     ``(R, Z, H, W)`` (``R`` right-hand sides sharing the operator); ``rows[r, k]``
     receives the partial sum of ``x * out`` of row ``k`` of image ``r`` (for
     the conjugate-gradient step length).
@@ -638,7 +640,7 @@ def gmrf_matvec(x, w, offsets, dw, curv, out, rows):
         i = k - z * H
         for r in range(R):
             orow = out[r, z, i]
-            _q_row(x[r], w, offsets, dw, curv, z, i, orow)
+            _q_row(x[r], w, offsets, dw, curv, cs, z, i, orow)
             xrow = x[r, z, i]
             acc = 0.0
             for j in range(W):
@@ -654,7 +656,7 @@ def _triple_coef(c, i):
 
 
 @njit(parallel=True, cache=True)
-def gmrf_diagonal(w, offsets, dw, curv, out):
+def gmrf_diagonal(w, offsets, dw, curv, cs, out):
     """Diagonal of ``Q`` (data precision, the weights of every clique touching a pixel
     and ``curv`` times the squared coefficients of its second-difference triples)."""
     Z, H, W = dw.shape
@@ -680,7 +682,19 @@ def gmrf_diagonal(w, offsets, dw, curv, out):
                 wrow = w[o, zb, ib]
                 lo, hi = _span(-dj, W)
                 _shifted_add(orow, wrow, lo, hi, -dj)
-        if curv > 0.0:
+        if curv > 0.0 and cs.shape[0] > 0:  # triple weights curv * cs at their middles
+            crow = cs[z, i]
+            for j in range(W - 2):
+                c = curv * crow[j + 1]
+                orow[j] += c
+                orow[j + 1] += 4.0 * c
+                orow[j + 2] += c
+            for c in range(max(0, i - 2), min(i, H - 3) + 1):
+                a = curv * _triple_coef(c, i) ** 2
+                cm = cs[z, c + 1]
+                for j in range(W):
+                    orow[j] += a * cm[j]
+        elif curv > 0.0:
             for j in range(W - 2):
                 orow[j] += curv
                 orow[j + 1] += 4.0 * curv
@@ -1129,9 +1143,11 @@ def _curv_normals(key, first, cbuf):
 
 
 @njit(parallel=True, cache=True)
-def _gather_curv(cbuf, a, out):
-    """``out += a (Dxx^T e_x + Dyy^T e_y)`` for the triple normals of :func:`_curv_normals`."""
+def _gather_curv(cbuf, a, out, cs):
+    """``out += a (Dxx^T S^(1/2) e_x + Dyy^T S^(1/2) e_y)`` for the triple normals of
+    :func:`_curv_normals` (``S``: ``cs`` at each triple's middle pixel, 1 when ``cs`` is empty)."""
     Z, H, W = out.shape
+    scaled = cs.shape[0] > 0
     for k in prange(Z * H):
         z = k // H
         i = k - z * H
@@ -1139,18 +1155,25 @@ def _gather_curv(cbuf, a, out):
         ex = cbuf[0, z, i]
         for j in range(W - 2):
             e = a * ex[j]
+            if scaled:
+                e *= np.sqrt(cs[z, i, j + 1])
             orow[j] += e
             orow[j + 1] -= 2.0 * e
             orow[j + 2] += e
         for c in range(max(0, i - 2), min(i, H - 3) + 1):
             coef = a * _triple_coef(c, i)
             ey = cbuf[1, z, c]
-            for j in range(W):
-                orow[j] += coef * ey[j]
+            if scaled:
+                cm = cs[z, c + 1]
+                for j in range(W):
+                    orow[j] += coef * np.sqrt(cm[j]) * ey[j]
+            else:
+                for j in range(W):
+                    orow[j] += coef * ey[j]
 
 
-def gmrf_perturbation(w, offsets, dw, key, scale, out, buf, curv=0.0, cbuf=None):
-    """``out = scale * (diag(dw)^(1/2) e1 + sum_o D_o^T diag(w_o)^(1/2) e2_o + curv^(1/2) (Dxx^T e3 + Dyy^T e4))``.
+def gmrf_perturbation(w, offsets, dw, key, scale, out, buf, curv=0.0, cbuf=None, cs=None):
+    """``out = scale * (diag(dw)^(1/2) e1 + sum_o D_o^T diag(w_o)^(1/2) e2_o + curv^(1/2) C^T S^(1/2) e3)``.
 
     Its covariance is ``scale^2 Q``: solving ``Q e = out`` gives a draw of
     ``N(0, scale^2 Q^-1)`` (perturbation-optimisation, Papandreou & Yuille 2010).
@@ -1165,7 +1188,7 @@ def gmrf_perturbation(w, offsets, dw, key, scale, out, buf, curv=0.0, cbuf=None)
     if curv > 0:
         N = out.size
         _curv_normals(np.uint64(key), (offsets.shape[0] + 1) * N, cbuf)
-        _gather_curv(cbuf, float(scale) * math.sqrt(curv), out)
+        _gather_curv(cbuf, float(scale) * math.sqrt(curv), out, _EMPTY3 if cs is None else cs)
 
 
 @njit(inline="always", cache=True)
@@ -1214,7 +1237,62 @@ def _curv_row(src, z, i, curv, out):
 
 
 @njit(inline="always", cache=True)
-def _q_row(src, w, offsets, dw, curv, z, i, out):
+def _curv_row_scaled(src, cs, z, i, curv, out):
+    """Row ``(z, i)`` of ``curv C^T S C src`` added to ``out``, ``S`` weighting each
+    second-difference triple by ``cs`` at its middle pixel (see :func:`_curv_row`).
+
+    Along the row, interior pixel ``j`` gathers the weighted differences of the
+    triples starting at ``j - 2``, ``j - 1`` and ``j`` (coefficients 1, -2, 1), over
+    slices so that the loop vectorises; down the columns, the (at most three)
+    triples holding row ``i``.
+    """
+    Z, H, W = src.shape
+    x = src[z, i]
+    c = cs[z, i]
+    if W >= 5:
+        o = out[2:W - 2]
+        x0, x1, x2, x3, x4 = x[0:W - 4], x[1:W - 3], x[2:W - 2], x[3:W - 1], x[4:W]
+        c1, c2, c3 = c[1:W - 3], c[2:W - 2], c[3:W - 1]
+        for t in range(W - 4):
+            d0 = x0[t] - 2.0 * x1[t] + x2[t]
+            d1 = x1[t] - 2.0 * x2[t] + x3[t]
+            d2 = x2[t] - 2.0 * x3[t] + x4[t]
+            o[t] += curv * (c1[t] * d0 - 2.0 * c2[t] * d1 + c3[t] * d2)
+        e0 = curv * c[1] * (x[0] - 2.0 * x[1] + x[2])
+        e1 = curv * c[2] * (x[1] - 2.0 * x[2] + x[3])
+        f0 = curv * c[W - 2] * (x[W - 3] - 2.0 * x[W - 2] + x[W - 1])
+        f1 = curv * c[W - 3] * (x[W - 4] - 2.0 * x[W - 3] + x[W - 2])
+        out[0] += e0
+        out[1] += e1 - 2.0 * e0
+        out[W - 2] += f1 - 2.0 * f0
+        out[W - 1] += f0
+    else:
+        for j in range(W - 2):  # scatter each triple's weighted difference
+            d = curv * c[j + 1] * (x[j] - 2.0 * x[j + 1] + x[j + 2])
+            out[j] += d
+            out[j + 1] -= 2.0 * d
+            out[j + 2] += d
+    if 2 <= i < H - 2:  # interior rows: the three triples fused in one pass
+        r0, r1, r3, r4 = src[z, i - 2], src[z, i - 1], src[z, i + 1], src[z, i + 2]
+        ca, cb, cc = cs[z, i - 1], c, cs[z, i + 1]
+        for j in range(W):
+            d0 = r0[j] - 2.0 * r1[j] + x[j]
+            d1 = r1[j] - 2.0 * x[j] + r3[j]
+            d2 = x[j] - 2.0 * r3[j] + r4[j]
+            out[j] += curv * (ca[j] * d0 - 2.0 * cb[j] * d1 + cc[j] * d2)
+        return
+    for r in range(max(0, i - 2), min(i, H - 3) + 1):
+        a = curv * _triple_coef(r, i)
+        q0 = src[z, r]
+        q1 = src[z, r + 1]
+        q2 = src[z, r + 2]
+        cm = cs[z, r + 1]
+        for j in range(W):
+            out[j] += a * cm[j] * (q0[j] - 2.0 * q1[j] + q2[j])
+
+
+@njit(inline="always", cache=True)
+def _q_row(src, w, offsets, dw, curv, cs, z, i, out):
     """Row ``(z, i)`` of ``Q src`` into ``out`` (see :func:`gmrf_matvec`)."""
     Z, H, W = src.shape
     n = offsets.shape[0]
@@ -1241,11 +1319,14 @@ def _q_row(src, w, offsets, dw, curv, z, i, out):
             lo, hi = _span(-dj, W)
             _clique_rows(out, wrow, xrow, nrow, lo, hi, -dj, -dj)
     if curv > 0.0:
-        _curv_row(src, z, i, curv, out)
+        if cs.shape[0] > 0:
+            _curv_row_scaled(src, cs, z, i, curv, out)
+        else:
+            _curv_row(src, z, i, curv, out)
 
 
 @njit(parallel=True, cache=True)
-def _cg_start(X, B, w, offsets, dw, curv, minv, Rr, P, Q, Zr, rows):
+def _cg_start(X, B, w, offsets, dw, curv, cs, minv, Rr, P, Q, Zr, rows):
     """``r = b - Q x``, ``z = M^-1 r``, ``p = z``, ``q = Q p``; row sums of r z, r r, b b, p q."""
     S, Z, H, W = X.shape
     for k in prange(Z * H):
@@ -1254,7 +1335,7 @@ def _cg_start(X, B, w, offsets, dw, curv, minv, Rr, P, Q, Zr, rows):
         tmp = np.empty(W, X.dtype)
         mrow = minv[z, i]
         for s in range(S):
-            _q_row(X[s], w, offsets, dw, curv, z, i, tmp)
+            _q_row(X[s], w, offsets, dw, curv, cs, z, i, tmp)
             rrow = Rr[s, z, i]
             zrow = Zr[s, z, i]
             brow = B[s, z, i]
@@ -1279,7 +1360,7 @@ def _cg_start(X, B, w, offsets, dw, curv, minv, Rr, P, Q, Zr, rows):
         i = k - z * H
         for s in range(S):
             qrow = Q[s, z, i]
-            _q_row(P[s], w, offsets, dw, curv, z, i, qrow)
+            _q_row(P[s], w, offsets, dw, curv, cs, z, i, qrow)
             prow = P[s, z, i]
             acc = 0.0
             for j in range(W):
@@ -1319,7 +1400,7 @@ def _cg_update(X, Rr, P, Q, Zr, minv, alpha, rows):
 
 
 @njit(parallel=True, cache=True)
-def _cg_direction(w, offsets, dw, curv, P, Q, Zr, beta, active, rows):
+def _cg_direction(w, offsets, dw, curv, cs, P, Q, Zr, beta, active, rows):
     """``p = z + b p`` and ``q = Q z + b q`` (so ``q = Q p`` with one product); row sums of p q."""
     S, Z, H, W = P.shape
     for k in prange(Z * H):
@@ -1330,7 +1411,7 @@ def _cg_direction(w, offsets, dw, curv, P, Q, Zr, beta, active, rows):
             if not active[s]:
                 continue
             b = beta[s]
-            _q_row(Zr[s], w, offsets, dw, curv, z, i, tmp)
+            _q_row(Zr[s], w, offsets, dw, curv, cs, z, i, tmp)
             prow = P[s, z, i]
             qrow = Q[s, z, i]
             zrow = Zr[s, z, i]
@@ -1345,7 +1426,7 @@ def _cg_direction(w, offsets, dw, curv, P, Q, Zr, beta, active, rows):
 
 
 @njit(cache=True)
-def gmrf_cg(X, B, w, offsets, dw, curv, minv, tols, max_iter, Rr, P, Q, Zr):
+def gmrf_cg(X, B, w, offsets, dw, curv, cs, minv, tols, max_iter, Rr, P, Q, Zr):
     """Jacobi-preconditioned conjugate gradients for ``Q X[s] = B[s]``, all ``s`` at once.
 
     ``X`` holds the starting points and receives the solutions; system ``s``
@@ -1355,7 +1436,7 @@ def gmrf_cg(X, B, w, offsets, dw, curv, minv, tols, max_iter, Rr, P, Q, Zr):
     S, Z, H, W = X.shape
     nr = Z * H
     rows = np.zeros((4, S, nr))
-    _cg_start(X, B, w, offsets, dw, curv, minv, Rr, P, Q, Zr, rows)
+    _cg_start(X, B, w, offsets, dw, curv, cs, minv, Rr, P, Q, Zr, rows)
     rz = np.zeros(S)
     rr = np.zeros(S)
     bb = np.zeros(S)
@@ -1407,7 +1488,7 @@ def gmrf_cg(X, B, w, offsets, dw, curv, minv, tols, max_iter, Rr, P, Q, Zr):
             break
         for s in range(S):
             beta_s[s] = beta[s]
-        _cg_direction(w, offsets, dw, curv, P, Q, Zr, beta_s, active, rows)
+        _cg_direction(w, offsets, dw, curv, cs, P, Q, Zr, beta_s, active, rows)
         for s in range(S):
             if active[s]:
                 a = 0.0

@@ -49,6 +49,15 @@ def second_difference_matrix(shape):
     return sp.vstack([dxx, dyy]).tocsr()
 
 
+def triple_factors(model):
+    """Weights of the rows of :func:`second_difference_matrix` under a prior with
+    ``noise_ref``: ``noise_ref / v`` at each triple's middle pixel (1 without it)."""
+    g = model.prior.noise_ref / (1.0 / model.dw)
+    if not model.prior.noise_ref:
+        g = np.ones(model.grid.shape)
+    return np.r_[g[:, :, 1:-1].ravel(), g[:, 1:-1, :].ravel()]
+
+
 def sparse_precision(model, weights):
     """``Q`` assembled from the clique weights the model uses, plus its data precision
     and its second-difference term (built independently with scipy)."""
@@ -57,23 +66,25 @@ def sparse_precision(model, weights):
         Q = Q + D.T @ sp.diags(w[ok]) @ D
     if model.curv:
         C = second_difference_matrix(model.grid.shape)
-        Q = Q + model.curv * (C.T @ C)
+        Q = Q + model.curv * (C.T @ sp.diags(triple_factors(model)) @ C)
     return Q.tocsc()
 
 
 @pytest.mark.parametrize("shape, neighbourhood", [((1, 12, 13), "20"), ((3, 7, 9), "8"),
-                                                  ((1, 3, 5), "4")])
+                                                  ((1, 3, 5), "4"), ((2, 6, 4), "8")])
 @pytest.mark.parametrize("tol, dtype, rtol", [(1e-9, np.float64, 1e-12), (1e-3, np.float32, 2e-6)])
-@pytest.mark.parametrize("curvature", [0.0, 2.5])
-def test_operator_matches_sparse_matrix(shape, neighbourhood, tol, dtype, rtol, curvature):
+@pytest.mark.parametrize("curvature, noise_ref", [(0.0, 0.0), (2.5, 0.0), (2.5, 0.7)])
+def test_operator_matches_sparse_matrix(shape, neighbourhood, tol, dtype, rtol, curvature,
+                                        noise_ref):
     """Matrix-free ``Q x`` and ``diag Q`` equal the assembled sparse matrix (round-off only),
-    with and without the second-difference term.
+    with and without the second-difference term, and with its triples weighted by a
+    noise-stabilised prior's factor (``noise_ref``; the clique weights here are given).
 
     ``apply`` works in float64 always; the solver's diagonal is float32 for the
     usual tolerances (rounding of about 20 float32 terms: within 2e-6 relative)."""
     gen = np.random.default_rng(11)
     prior = GSMPrior.quadratic(1.0, neighbourhood=neighbourhood,
-                               strength_z=0.5).with_curvature(curvature)
+                               strength_z=0.5).with_curvature(curvature).with_noise_ref(noise_ref)
     m = GreyModel(gen.normal(size=shape), variance=gen.uniform(0.5, 2, size=shape), prior=prior,
                   tol=tol)
     assert m.solver_dtype == dtype
@@ -134,11 +145,13 @@ def test_conditional_mean_error_is_small_against_the_noise_at_low_noise(sigma):
 
 
 @pytest.mark.parametrize("shape", [(1, 6, 7), (2, 5, 4)])
-def test_curvature_perturbation_is_the_transposed_second_differences_of_its_normals(shape):
+@pytest.mark.parametrize("weighted", [False, True])
+def test_curvature_perturbation_is_the_transposed_second_differences_of_its_normals(shape, weighted):
     """With no clique weights and no data precision the perturbation is exactly
-    ``scale sqrt(kappa) C^T e``, ``C`` the stacked second differences built with scipy and
-    ``e`` the counter normals of the row triples (``(n + 1) N + p``) and column triples
-    (``(n + 2) N + p``): so its covariance is ``scale^2 kappa C^T C`` and the two families
+    ``scale sqrt(kappa) C^T S^(1/2) e``, ``C`` the stacked second differences built with
+    scipy, ``S`` the triples' weights (``cs`` at their middle pixels, or 1) and ``e`` the
+    counter normals of the row triples (``(n + 1) N + p``) and column triples
+    (``(n + 2) N + p``): so its covariance is ``scale^2 kappa C^T S C`` and the two families
     draw different numbers (round-off only)."""
     offsets = np.array([(0, 0, 1), (0, 1, 0)], dtype=np.int64)
     n, N = len(offsets), int(np.prod(shape))
@@ -146,14 +159,17 @@ def test_curvature_perturbation_is_the_transposed_second_differences_of_its_norm
     dw = np.zeros(shape)
     out, buf, cbuf = np.empty(shape), np.empty_like(w), np.empty((2, *shape))
     key, scale, kappa = np.uint64(kernels.stream_key(3, 1, 4)), 0.7, 2.5
-    kernels.gmrf_perturbation(w, offsets, dw, key, scale, out, buf, kappa, cbuf)
+    cs = np.random.default_rng(5).uniform(0.2, 3.0, shape) if weighted else None
+    kernels.gmrf_perturbation(w, offsets, dw, key, scale, out, buf, kappa, cbuf, cs)
     e = kernels.normal_many(key, (n + 1) * N, 2 * N)
     Z, H, W = shape
     zz, ii, jj = np.meshgrid(np.arange(Z), np.arange(H), np.arange(W), indexing="ij")
     e_rows = e[:N][(jj < W - 2).ravel()]
     e_cols = e[N:][(ii < H - 2).ravel()]
     C = second_difference_matrix(shape)
-    expect = scale * np.sqrt(kappa) * (C.T @ np.r_[e_rows, e_cols])
+    s = (np.r_[cs[:, :, 1:-1].ravel(), cs[:, 1:-1, :].ravel()] if weighted
+         else np.ones(C.shape[0]))
+    expect = scale * np.sqrt(kappa) * (C.T @ (np.sqrt(s) * np.r_[e_rows, e_cols]))
     np.testing.assert_allclose(out.ravel(), expect, rtol=1e-12, atol=1e-12)
 
 def test_ziggurat_tables_match_published_constants():
@@ -291,10 +307,12 @@ def test_single_system_draws_follow_the_exact_gmrf(gmrf_case):
     assert abs(((xs.mean(axis=0) - mean) ** 2 * S / var).mean() - 1) < 0.3
 
 
-def test_noise_stabilised_quadratic_prior_matches_exact_gmrf():
+@pytest.mark.parametrize("curvature", [0.0, 4.0])
+def test_noise_stabilised_quadratic_prior_matches_exact_gmrf(curvature):
     """A quadratic prior with ``noise_ref`` under heteroscedastic noise is still a Gaussian MRF,
-    with clique weight ``lambda * noise_ref * (1/v_p + 1/v_q) / 2`` (the factor written out
-    here from the variance).  Sampled moments against ``Q^-1 b`` and ``diag Q^-1`` (scipy
+    with clique weight ``lambda * noise_ref * (1/v_p + 1/v_q) / 2`` and, with the
+    second-difference term, each triple weighted by ``noise_ref / v`` at its middle pixel
+    (the factors written out here from the variance).  Sampled moments against ``Q^-1 b`` and ``diag Q^-1`` (scipy
     sparse solve and dense inverse; Rue & Held 2005, ch. 2), as in
     :func:`test_short_run_variance_close_to_exact`: the Rao-Blackwellised mean is exact up
     to the 1e-9 solves, and the mean variance ratio over 300 kept sweeps has sd
@@ -304,7 +322,7 @@ def test_noise_stabilised_quadratic_prior_matches_exact_gmrf():
     lam, ref = 3.0, 0.5
     v = gen.uniform(0.2, 1.5, (H, W))
     y = gen.normal(size=(H, W))
-    prior = GSMPrior.quadratic(lam, neighbourhood="8").with_noise_ref(ref)
+    prior = GSMPrior.quadratic(lam, neighbourhood="8").with_noise_ref(ref).with_curvature(curvature)
     model = GreyModel(y, variance=v, prior=prior, tol=1e-9)
     weights = np.zeros(model.w.shape)
     for o, (dz, di, dj) in enumerate(model.offsets):
@@ -387,7 +405,7 @@ def _energy_reference(model, x):
         e -= np.sum(logsumexp(lp, axis=1))
     if model.curv:  # the second-difference term through scipy's sparse matrix
         C = second_difference_matrix(x.shape)
-        e += 0.5 * model.curv * float(np.sum((C @ x.ravel()) ** 2))
+        e += 0.5 * model.curv * float(np.sum(triple_factors(model) * (C @ x.ravel()) ** 2))
     return float(e)
 
 

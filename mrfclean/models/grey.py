@@ -28,6 +28,15 @@ stacks the in-plane second differences :math:`x_p - 2 x_{p+e} + x_{p+2e}` along
 rows and columns in :math:`C`: a quadratic prior of the kind used for smooth
 surfaces (Rue & Held 2005, ch. 3), which favours smooth ramps over flat steps.
 
+Under signal-dependent noise the prior can act on the noise-stabilised image
+(``GSMPrior.noise_ref`` :math:`= r > 0`): clique :math:`(p, q)` then has
+precisions :math:`\lambda_o \pi_c\, r (v_p^{-1} + v_q^{-1}) / 2` and the triple
+centred at :math:`m` the weight :math:`\kappa\, r / v_m`, the linearisation
+at the noise variance :math:`v` of a prior on a variance-stabilised image
+:math:`f(x)` with :math:`f' = v^{-1/2}` (Anscombe 1948; Makitalo & Foi 2013).
+Given the scales the posterior is still a Gaussian MRF, so the updates below
+stay exact.
+
 Given one scale per clique the prior is a Gaussian MRF with precision
 :math:`\sum_o D_o^\top \mathrm{diag}(\lambda_o \pi_{c}) D_o + \kappa C^\top C`
 (Rue & Held 2005), so the posterior of the image is Gaussian with precision
@@ -57,6 +66,10 @@ References
 .. [5] A. Foi, M. Trimeche, V. Katkovnik and K. Egiazarian, "Practical
    Poissonian-Gaussian noise modeling and fitting for single-image raw-data",
    IEEE TIP 17 (2008) 1737-1754.
+.. [6] F. J. Anscombe, "The transformation of Poisson, binomial and
+   negative-binomial data", Biometrika 35 (1948) 246-254.
+.. [7] M. Makitalo and A. Foi, "Optimal inversion of the generalized Anscombe
+   transformation for Poisson-Gaussian noise", IEEE TIP 22 (2013) 91-103.
 """
 
 from __future__ import annotations
@@ -136,11 +149,13 @@ class GSMPrior:
         0 (default): the precisions are the same at every pixel.  ``> 0``: the
         prior acts on the noise-stabilised image, linearised at the noise
         variance ``v`` the data term uses: a clique's precisions are multiplied
-        by ``noise_ref / v`` (the mean of that factor at its two pixels), so
-        that under signal-dependent noise the prior smooths each region in
-        proportion to its own noise, as a prior on the variance-stabilised
-        image ``f(x)``, ``f' = 1 / sqrt(v)``, would (Anscombe 1948; Makitalo &
-        Foi 2013).  With a constant ``v = noise_ref`` nothing changes.
+        by ``noise_ref / v`` (the mean of that factor at its two pixels) and a
+        second-difference triple's weight by ``noise_ref / v`` at its middle
+        pixel, so that under signal-dependent noise the prior smooths each
+        region in proportion to its own noise, as a prior on the
+        variance-stabilised image ``f(x)``, ``f' = 1 / sqrt(v)``, would
+        (Anscombe 1948; Makitalo & Foi 2013).  With a constant
+        ``v = noise_ref`` nothing changes.
     units : float
         Intensity span the potentials were learned for (differences are
         measured in units of the image's range divided by this).
@@ -470,6 +485,9 @@ class GreyModel(ChainModel):
         ft = np.float32 if min(self.mean_tol, self.sample_tol) >= SINGLE_PRECISION_TOL else np.float64
         self.solver_dtype = np.dtype(ft)
         self._dw_s = self.dw.astype(ft)
+        # the second-difference triples' factors (noise_ref / v at their middles), if any
+        self._cs = (self.gs.astype(ft) if self.gs is not None and self.curv > 0
+                    else np.zeros((0, 0, 0), ft))
         self.w = np.zeros((n, *shape), ft)
         self._buf = {k: np.zeros((2, *shape), ft) for k in ("x", "r", "p", "q", "z")}
         self._diag = np.zeros(shape, ft)
@@ -482,7 +500,7 @@ class GreyModel(ChainModel):
 
     # --- linear algebra -------------------------------------------------------------
     def _set_operator(self):
-        kernels.gmrf_diagonal(self.w, self.offsets, self._dw_s, self.curv, self._diag)
+        kernels.gmrf_diagonal(self.w, self.offsets, self._dw_s, self.curv, self._cs, self._diag)
         np.divide(1.0, self._diag, out=self._minv)
 
     def apply(self, x, weights=None):
@@ -490,7 +508,9 @@ class GreyModel(ChainModel):
         w = np.ascontiguousarray(self.w if weights is None else weights, dtype=np.float64)
         xs = np.ascontiguousarray(np.asarray(x, dtype=np.float64).reshape(1, *self.grid.shape))
         out = np.empty_like(xs)
-        kernels.gmrf_matvec(xs, w, self.offsets, self.dw, self.curv, out, np.empty((1, self.grid.shape[0] * self.grid.shape[1])))
+        cs = self.gs if self.gs is not None and self.curv > 0 else np.zeros((0, 0, 0))
+        kernels.gmrf_matvec(xs, w, self.offsets, self.dw, self.curv, cs, out,
+                            np.empty((1, self.grid.shape[0] * self.grid.shape[1])))
         return out[0]
 
     def solve(self, rhs, x0, tols=None):
@@ -507,7 +527,8 @@ class GreyModel(ChainModel):
             X[k] = x0[k]
         tols = np.full(R, self.mean_tol) if tols is None else np.asarray(tols, dtype=np.float64)
         B = np.ascontiguousarray(rhs, dtype=self.solver_dtype)
-        it, worst = kernels.gmrf_cg(X, B, self.w, self.offsets, self._dw_s, self.curv, self._minv, tols,
+        it, worst = kernels.gmrf_cg(X, B, self.w, self.offsets, self._dw_s, self.curv, self._cs,
+                                    self._minv, tols,
                                     self.max_iter, Rr, P, Qp, Zr)
         self.stats.solves += 1
         self.stats.iterations += int(it)
@@ -532,6 +553,9 @@ class GreyModel(ChainModel):
             return 0.0
         dxx = x[:, :, :-2] - 2.0 * x[:, :, 1:-1] + x[:, :, 2:]
         dyy = x[:, :-2, :] - 2.0 * x[:, 1:-1, :] + x[:, 2:, :]
+        if self.gs is not None:  # each triple weighted at its middle pixel
+            return 0.5 * self.curv * float(np.sum(self.gs[:, :, 1:-1] * dxx * dxx)
+                                           + np.sum(self.gs[:, 1:-1, :] * dyy * dyy))
         return 0.5 * self.curv * float(np.sum(dxx * dxx) + np.sum(dyy * dyy))
 
     def sweep(self, state, temperature, key):
@@ -555,7 +579,7 @@ class GreyModel(ChainModel):
             kernels.gmrf_perturbation(self.w, self.offsets, self._dw_s,
                                       kernels.derive_key(np.uint64(key), kernels._GREY_NOISE_SALT),
                                       math.sqrt(temperature), self._rhs[1], self._pbuf,
-                                      self.curv, self._cbuf)
+                                      self.curv, self._cbuf, self._cs)
             if state.draws < self.single_solves:
                 np.add(self._rhs[0], self._rhs[1], out=self._rhs[1])
                 X, it = self.solve(self._rhs[1:], (state.x,), (self.sample_tol,))
