@@ -339,7 +339,11 @@ def _to_one_channel(array, colour):
     if colour in ("red", "green", "blue"):
         return np.ascontiguousarray(rgb[..., ("red", "green", "blue").index(colour)])
     work = rgb.astype(np.float64)
-    grey = work @ _LUMINANCE if colour == "luminance" else work.mean(axis=-1)
+    if colour == "luminance":  # summed by channel, not by a BLAS product (see GreyModel)
+        grey = (work[..., 0] * _LUMINANCE[0] + work[..., 1] * _LUMINANCE[1]
+                + work[..., 2] * _LUMINANCE[2])
+    else:
+        grey = work.mean(axis=-1)
     return from_work(grey, array.dtype)
 
 

@@ -141,3 +141,18 @@ def test_band_writer_leaves_nothing_on_error(tmp_path):
             w[0:2] = np.ones((2, 6), np.uint8)
             raise RuntimeError("stop")
     assert not dst.exists() and not any(tmp_path.iterdir())
+
+
+def test_luminance_conversion_matches_skimage_rgb2gray(tmp_path):
+    """A colour TIFF read with ``colour="luminance"`` against scikit-image's ``rgb2gray``
+    (same ITU-R BT.709 weights) on its shipped astronaut picture: within one grey level
+    of 8 bits after rounding back to the input's dtype."""
+    import skimage.data
+    from skimage.color import rgb2gray
+
+    rgb = skimage.data.astronaut()[100:164, 150:230]
+    p = tmp_path / "colour.tif"
+    tifffile.imwrite(p, rgb, photometric="rgb")
+    grey = io.read_image(p, colour="luminance").array
+    assert grey.dtype == np.uint8 and grey.shape == rgb.shape[:2]
+    assert np.abs(grey.astype(float) - 255 * rgb2gray(rgb)).max() <= 1.0
