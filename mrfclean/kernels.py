@@ -1325,6 +1325,31 @@ def _q_row(src, w, offsets, dw, curv, cs, z, i, out):
             _curv_row(src, z, i, curv, out)
 
 
+@njit(inline="always", cache=True)
+def _row_sum(t, n):
+    """``sum(t[:n])`` in a fixed order: eight running sums over stride-8 lanes, then a tree.
+
+    A single running sum is a chain of dependent additions that the compiler may
+    not reorder (nor vectorise) under strict floating point; eight independent ones
+    run about 2.5x faster on the conjugate-gradient rows (measured on 512-wide rows)
+    and give the same result on every machine and thread count.
+    """
+    s0 = s1 = s2 = s3 = s4 = s5 = s6 = s7 = 0.0
+    m = n - n % 8
+    for j in range(0, m, 8):
+        s0 += t[j]
+        s1 += t[j + 1]
+        s2 += t[j + 2]
+        s3 += t[j + 3]
+        s4 += t[j + 4]
+        s5 += t[j + 5]
+        s6 += t[j + 6]
+        s7 += t[j + 7]
+    for j in range(m, n):
+        s0 += t[j]
+    return ((s0 + s1) + (s2 + s3)) + ((s4 + s5) + (s6 + s7))
+
+
 @njit(parallel=True, cache=True)
 def _cg_start(X, B, w, offsets, dw, curv, cs, minv, Rr, P, Q, Zr, rows):
     """``r = b - Q x``, ``z = M^-1 r``, ``p = z``, ``q = Q p``; row sums of r z, r r, b b, p q."""
@@ -1333,6 +1358,9 @@ def _cg_start(X, B, w, offsets, dw, curv, cs, minv, Rr, P, Q, Zr, rows):
         z = k // H
         i = k - z * H
         tmp = np.empty(W, X.dtype)
+        t0 = np.empty(W)
+        t1 = np.empty(W)
+        t2 = np.empty(W)
         mrow = minv[z, i]
         for s in range(S):
             _q_row(X[s], w, offsets, dw, curv, cs, z, i, tmp)
@@ -1340,32 +1368,29 @@ def _cg_start(X, B, w, offsets, dw, curv, cs, minv, Rr, P, Q, Zr, rows):
             zrow = Zr[s, z, i]
             brow = B[s, z, i]
             prow = P[s, z, i]
-            a0 = 0.0
-            a1 = 0.0
-            a2 = 0.0
             for j in range(W):
                 rj = brow[j] - tmp[j]
                 rrow[j] = rj
                 zj = mrow[j] * rj
                 zrow[j] = zj
                 prow[j] = zj
-                a0 += float64(rj) * zj  # products in float64: no overflow in float32
-                a1 += float64(rj) * rj
-                a2 += float64(brow[j]) * brow[j]
-            rows[0, s, k] = a0
-            rows[1, s, k] = a1
-            rows[2, s, k] = a2
+                t0[j] = float64(rj) * zj  # products in float64: no overflow in float32
+                t1[j] = float64(rj) * rj
+                t2[j] = float64(brow[j]) * brow[j]
+            rows[0, s, k] = _row_sum(t0, W)
+            rows[1, s, k] = _row_sum(t1, W)
+            rows[2, s, k] = _row_sum(t2, W)
     for k in prange(Z * H):
         z = k // H
         i = k - z * H
+        t0 = np.empty(W)
         for s in range(S):
             qrow = Q[s, z, i]
             _q_row(P[s], w, offsets, dw, curv, cs, z, i, qrow)
             prow = P[s, z, i]
-            acc = 0.0
             for j in range(W):
-                acc += float64(prow[j]) * qrow[j]
-            rows[3, s, k] = acc
+                t0[j] = float64(prow[j]) * qrow[j]
+            rows[3, s, k] = _row_sum(t0, W)
 
 
 @njit(parallel=True, cache=True)
@@ -1376,6 +1401,8 @@ def _cg_update(X, Rr, P, Q, Zr, minv, alpha, rows):
         z = k // H
         i = k - z * H
         mrow = minv[z, i]
+        t0 = np.empty(W)
+        t1 = np.empty(W)
         for s in range(S):
             a = alpha[s]
             if a == 0.0:
@@ -1385,18 +1412,16 @@ def _cg_update(X, Rr, P, Q, Zr, minv, alpha, rows):
             prow = P[s, z, i]
             qrow = Q[s, z, i]
             zrow = Zr[s, z, i]
-            a0 = 0.0
-            a1 = 0.0
             for j in range(W):
                 xrow[j] += a * prow[j]
                 rj = rrow[j] - a * qrow[j]
                 rrow[j] = rj
                 zj = mrow[j] * rj
                 zrow[j] = zj
-                a0 += float64(rj) * zj
-                a1 += float64(rj) * rj
-            rows[0, s, k] = a0
-            rows[1, s, k] = a1
+                t0[j] = float64(rj) * zj
+                t1[j] = float64(rj) * rj
+            rows[0, s, k] = _row_sum(t0, W)
+            rows[1, s, k] = _row_sum(t1, W)
 
 
 @njit(parallel=True, cache=True)
@@ -1407,6 +1432,7 @@ def _cg_direction(w, offsets, dw, curv, cs, P, Q, Zr, beta, active, rows):
         z = k // H
         i = k - z * H
         tmp = np.empty(W, P.dtype)
+        t0 = np.empty(W)
         for s in range(S):
             if not active[s]:
                 continue
@@ -1415,14 +1441,13 @@ def _cg_direction(w, offsets, dw, curv, cs, P, Q, Zr, beta, active, rows):
             prow = P[s, z, i]
             qrow = Q[s, z, i]
             zrow = Zr[s, z, i]
-            acc = 0.0
             for j in range(W):
                 pj = zrow[j] + b * prow[j]
                 qj = tmp[j] + b * qrow[j]
                 prow[j] = pj
                 qrow[j] = qj
-                acc += float64(pj) * qj
-            rows[3, s, k] = acc
+                t0[j] = float64(pj) * qj
+            rows[3, s, k] = _row_sum(t0, W)
 
 
 @njit(cache=True)
@@ -1431,7 +1456,8 @@ def gmrf_cg(X, B, w, offsets, dw, curv, cs, minv, tols, max_iter, Rr, P, Q, Zr):
 
     ``X`` holds the starting points and receives the solutions; system ``s``
     stops when ``||r|| <= tols[s] ||b||``.  Returns ``(iterations, worst
-    relative residual)``.  Reductions are row partial sums added in order.
+    relative residual)``.  Reductions are row partial sums (:func:`_row_sum`)
+    added in order, so the result does not depend on the thread count.
     """
     S, Z, H, W = X.shape
     nr = Z * H
