@@ -417,12 +417,14 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         base = GSMPrior.load(prior)
     setup = GreySetup(term, low, span, base, estimated, None, noise_curve)
     u, var_u = setup.observed(y, pilot)
-    if isinstance(term, PoissonGaussianNoise) and base.noise_ref == 0:
-        # the prior acts on the noise-stabilised image (see GSMPrior.noise_ref): over 18
-        # Poisson-Gaussian draws on the benchmark's images +0.34 dB on average (cell 512^2
-        # +1.1 to +1.2, where SURE now takes the curvature term; coins +0.25 to +0.34;
-        # camera and moon -0.04 to +0.01), measured at stop 12 (DEVELOPERS.md)
-        base = base.with_noise_ref(float(np.mean(var_u)))
+    # Under signal-dependent noise the prior acts on the noise-stabilised image (see
+    # GSMPrior.noise_ref): over 18 Poisson-Gaussian draws on the benchmark's images
+    # +0.34 dB on average (cell 512^2 +1.1 to +1.2, where SURE now takes the curvature
+    # term; coins +0.25 to +0.34; camera and moon -0.04 to +0.01), measured at stop 12
+    # (DEVELOPERS.md).  It belongs to this image's noise, so one carried by a given prior
+    # (from another image) is replaced, and Gaussian noise has none.
+    signal_dependent = isinstance(term, PoissonGaussianNoise) and term.a > 0
+    base = base.with_noise_ref(float(np.mean(var_u)) if signal_dependent else 0.0)
     sseed = seed ^ 0x3C3C3C3C
     # a curvature carried by a given prior counts as given unless "auto" asks for SURE
     base = base.with_curvature(0.0 if curvature == "auto"

@@ -27,7 +27,7 @@ IMAGE_SUFFIXES = TIFF_SUFFIXES + PNG_SUFFIXES
 DEFAULT_MAX_PIXELS = 2**31
 
 #: Colour conversions accepted by ``read_image(colour=...)``.
-#: Luminance weights are ITU-R BT.709 (as in skimage.color.rgb2gray).
+#: Luminance weights: the same as skimage.color.rgb2gray (close to ITU-R BT.709's).
 COLOUR_CHOICES = ("luminance", "mean", "red", "green", "blue")
 _LUMINANCE = np.array([0.2125, 0.7154, 0.0721])
 

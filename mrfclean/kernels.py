@@ -658,7 +658,8 @@ def _triple_coef(c, i):
 @njit(parallel=True, cache=True)
 def gmrf_diagonal(w, offsets, dw, curv, cs, out):
     """Diagonal of ``Q`` (data precision, the weights of every clique touching a pixel
-    and ``curv`` times the squared coefficients of its second-difference triples)."""
+    and ``curv`` times the squared coefficients of its second-difference triples, each
+    also times ``cs`` at the triple's middle pixel when ``cs`` is not empty)."""
     Z, H, W = dw.shape
     n = offsets.shape[0]
     for k in prange(Z * H):
@@ -1042,6 +1043,8 @@ def gsm_expand(comp, prec, strength, w, offsets=None, scale=None):
     """
     if scale is None:
         _gsm_expand(comp, prec, strength, w, _EMPTY_OFFSETS, _EMPTY3)
+    elif offsets is None:
+        raise ValueError("per-pixel prior scales need the clique offsets")
     else:
         _gsm_expand(comp, prec, strength, w, offsets, scale)
 
@@ -1049,8 +1052,9 @@ def gsm_expand(comp, prec, strength, w, offsets=None, scale=None):
 def gsm_mean_weights(x, offsets, logamp, prec, strength, w, scale=None):
     """Posterior-mean precision of every clique given the image (half-quadratic weights).
 
-    ``w[o, p] = strength[o] * E[prec | d]``, the weight of one iteratively
-    reweighted least-squares step; for a Gaussian scale mixture this step never
+    ``w[o, p] = strength[o] * E[prec | d]`` (with per-pixel prior scales ``scale``,
+    ``strength[o] * m * E[prec | m d^2]``, ``m`` the mean of the clique's two scales),
+    the weight of one iteratively reweighted least-squares step; for a Gaussian scale mixture this step never
     raises the energy (Geman & Reynolds 1992; Nikolova & Ng 2005).
     """
     rows = np.empty(x.shape[0] * x.shape[1])
@@ -1181,7 +1185,9 @@ def gmrf_perturbation(w, offsets, dw, key, scale, out, buf, curv=0.0, cbuf=None,
     of ``w``) and then gathered at both of its ends; the data normal of pixel
     ``p`` has counter ``n N + p``; with ``curv > 0`` the second-difference
     triples' normals (counters ``(n + 1) N + p`` along rows and ``(n + 2) N + p``
-    down columns) go through ``cbuf`` (shape ``(2, Z, H, W)``).
+    down columns) go through ``cbuf`` (shape ``(2, Z, H, W)``), each scaled by the
+    square root of ``cs`` at its triple's middle pixel when ``cs`` is given (``S``
+    above; the identity otherwise).
     """
     _clique_normals(w, offsets, dw, np.uint64(key), buf, out)
     _gather_perturbation(offsets, dw, buf, float(scale), out)

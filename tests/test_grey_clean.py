@@ -437,3 +437,29 @@ def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
     y = (steps + 0.1 * gen.standard_normal(steps.shape))[None]
     assert grey_setup(y, prior=given, seed=3).prior.curvature == 0.0
     assert grey_setup(y, prior=given, curvature=7.0, strength=1.0).prior.curvature == 7.0
+
+
+def test_poisson_gaussian_setup_stabilises_the_prior_for_this_image_only():
+    """``grey_setup`` under Poisson-Gaussian noise (gain and read variance given, no SURE)
+    sets ``noise_ref`` to the mean noise variance in the prior's units, written out here
+    from the model ``Var(y | x) = a x + b`` (Foi et al. 2008) at the lightly smoothed
+    image; a prior carrying another image's value is re-set, and Gaussian noise gets none.
+    The value is logged with the result."""
+    from scipy import ndimage
+
+    from mrfclean.grey import grey_setup
+
+    gen = np.random.default_rng(8)
+    x = 0.2 + 0.6 * np.linspace(0, 1, 40)[None, :] * np.ones((40, 1))
+    a, b = 0.01, 4e-4
+    y = (a * gen.poisson(x / a) + np.sqrt(b) * gen.standard_normal(x.shape))[None]
+    carried = GSMPrior.load().with_noise_ref(0.5)
+    setup = grey_setup(y, noise="poisson-gaussian", gain=a, read_variance=b, strength=0.5,
+                       curvature=0.0, prior=carried)
+    smooth = ndimage.gaussian_filter(y, (0.0, 1.5, 1.5), mode="reflect")
+    expect = np.mean((a * np.maximum(smooth, 0) + b) / setup.span**2)
+    assert setup.prior.noise_ref == pytest.approx(expect, rel=1e-12)
+    assert setup.describe()["noise_ref"] == pytest.approx(expect, rel=1e-12)
+    gauss = grey_setup(y, noise="gaussian", sigma=0.05, strength=0.5, curvature=0.0,
+                       prior=carried)
+    assert gauss.prior.noise_ref == 0 and "noise_ref" not in gauss.describe()

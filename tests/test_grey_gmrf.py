@@ -339,6 +339,46 @@ def test_noise_stabilised_quadratic_prior_matches_exact_gmrf(curvature):
                               (y / v).ravel()) - mean).max() > 1e-2
 
 
+def test_noise_stabilised_weights_on_a_stack_against_numpy():
+    """On a (2, 5, 6) stack with z cliques, the clique weights of drawn scales
+    (``gsm_expand``) and the half-quadratic weights (``gsm_mean_weights``) of a prior with
+    ``noise_ref`` against numpy written out here: ``lam pi_c m`` and
+    ``lam m E[pi | m d^2]`` (scipy's logsumexp for the mixture), with ``m`` the factor of
+    each clique from the variance, 0 off the lattice (round-off only)."""
+    from scipy.special import logsumexp
+
+    gen = np.random.default_rng(17)
+    shape = (2, 5, 6)
+    x = gen.normal(size=shape)
+    prior = GSMPrior.load().with_strength(1.3, 0.7).with_noise_ref(0.6)
+    m = GreyModel(x, variance=gen.uniform(0.2, 1.5, shape), prior=prior)
+    assert any(tuple(o) == (1, 0, 0) for o in m.offsets)
+    comp = np.full(m.w.shape, kernels.NO_CLIQUE, np.uint8)  # off the lattice: no clique
+    for o, (dz, di, dj) in enumerate(m.offsets):
+        tail, _ = _clique_pairs(comp[o], dz, di, dj)
+        tail[...] = gen.integers(0, m.prec.shape[1], size=tail.shape)
+    w = np.zeros(m.w.shape)
+    kernels.gsm_expand(comp, m.prec, m.strength, w, m.offsets, m.gs)
+    hq = np.zeros(m.w.shape)
+    kernels.gsm_mean_weights(x, m.offsets, m.logamp, m.prec, m.strength, hq, m.gs)
+    for o, (dz, di, dj) in enumerate(m.offsets):
+        factor = _stabilising_factor(m, dz, di, dj)
+        expect = np.zeros(shape)
+        tail, _ = _clique_pairs(expect, dz, di, dj)
+        tail[...] = m.strength[o] * m.prec[o][_clique_pairs(comp[o], dz, di, dj)[0]] * factor
+        np.testing.assert_allclose(w[o], expect, rtol=1e-12, atol=0)
+        a, b = _clique_pairs(x, dz, di, dj)
+        d2 = ((b - a) ** 2 * factor)[..., None]
+        lp = m.logamp[o] - 0.5 * m.strength[o] * m.prec[o] * d2
+        post = np.exp(lp - logsumexp(lp, axis=-1, keepdims=True))
+        expect = np.zeros(shape)
+        tail, _ = _clique_pairs(expect, dz, di, dj)
+        tail[...] = m.strength[o] * factor * np.sum(post * m.prec[o], axis=-1)
+        np.testing.assert_allclose(hq[o], expect, rtol=1e-10, atol=0)
+    with pytest.raises(ValueError, match="offsets"):
+        kernels.gsm_expand(comp, m.prec, m.strength, w, None, m.gs)
+
+
 def test_sweep_independent_of_thread_count():
     """Counter-based random numbers and ordered row sums: 1 thread and 2 threads agree bit for bit."""
     gen = np.random.default_rng(3)

@@ -145,8 +145,8 @@ def test_band_writer_leaves_nothing_on_error(tmp_path):
 
 def test_luminance_conversion_matches_skimage_rgb2gray(tmp_path):
     """A colour TIFF read with ``colour="luminance"`` against scikit-image's ``rgb2gray``
-    (same ITU-R BT.709 weights) on its shipped astronaut picture: within one grey level
-    of 8 bits after rounding back to the input's dtype."""
+    (the same weights) on its shipped astronaut picture: within one grey level of 8 bits
+    after rounding back to the input's dtype."""
     import skimage.data
     from skimage.color import rgb2gray
 

@@ -40,7 +40,9 @@ stay exact.
 Given one scale per clique the prior is a Gaussian MRF with precision
 :math:`\sum_o D_o^\top \mathrm{diag}(\lambda_o \pi_{c}) D_o + \kappa C^\top C`
 (Rue & Held 2005), so the posterior of the image is Gaussian with precision
-:math:`Q = V^{-1} + \sum_o D_o^\top \Lambda_o D_o + \kappa C^\top C` and mean
+:math:`Q = V^{-1} + \sum_o D_o^\top \Lambda_o D_o + \kappa C^\top C` (with a
+noise-stabilised prior, :math:`\Lambda_o` includes the cliques' factors and the
+last term is :math:`\kappa C^\top S C`, :math:`S` the triples' factors) and mean
 :math:`Q^{-1} V^{-1} y`;
 given the image the scales are independent categorical draws.  This is the
 auxiliary-variable Gibbs sampler of Schmidt, Gao & Roth (2010).  The image
@@ -153,9 +155,14 @@ class GSMPrior:
         second-difference triple's weight by ``noise_ref / v`` at its middle
         pixel, so that under signal-dependent noise the prior smooths each
         region in proportion to its own noise, as a prior on the
-        variance-stabilised image ``f(x)``, ``f' = 1 / sqrt(v)``, would
-        (Anscombe 1948; Makitalo & Foi 2013).  With a constant
-        ``v = noise_ref`` nothing changes.
+        variance-stabilised image ``f(x)``, ``f' = 1 / sqrt(v)``, would to
+        first order (Anscombe 1948; Makitalo & Foi 2013).  The mean of
+        ``1 / v`` over a clique is that transform's factor
+        ``4 / (sqrt(v_p) + sqrt(v_q))^2`` where ``v`` changes little across
+        the clique, as it does for a variance evaluated at a smoothed pilot;
+        at a sharp change of variance it ties the pair more strongly.  With a
+        constant ``v = noise_ref`` nothing changes.  The cleaner sets it per
+        image (:func:`mrfclean.grey.grey_setup`); it is not saved with a prior.
     units : float
         Intensity span the potentials were learned for (differences are
         measured in units of the image's range divided by this).
@@ -194,7 +201,9 @@ class GSMPrior:
         groups = tuple(PriorGroup(g["name"], tuple(tuple(int(v) for v in o) for o in g["offsets"]),
                                   tuple(float(a) for a in g["logamp"]), prec)
                        for g in d["groups"])
-        meta = {k: v for k, v in d.items() if k not in ("groups", "precisions", "curvature")}
+        # noise_ref belongs to an image's noise (set by the cleaner), not to a saved prior
+        meta = {k: v for k, v in d.items()
+                if k not in ("groups", "precisions", "curvature", "noise_ref")}
         return cls(groups, curvature=float(d.get("curvature", 0.0)), meta=meta)
 
     @classmethod
@@ -428,7 +437,9 @@ class GreyModel(ChainModel):
     components (1 byte), plus fourteen solver-word images (two
     conjugate-gradient systems of five vectors, two right-hand sides, the
     diagonal and its inverse; two more for the triple normals when the
-    curvature term is on) and the float64 data, chain states and tallies.
+    curvature term is on, and one for the triples' factors when the prior is
+    noise-stabilised) and the float64 data, chain states and tallies (plus
+    the float64 factor image of a noise-stabilised prior).
 
     Examples
     --------
