@@ -811,32 +811,38 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
             e2 = ev[t] * ev[t]
             ev[t] = e2 * e2
     tots = buf[K, :n]
+    if draw:
+        # the first c whose running sum exceeds u: the running sums do not decrease, so
+        # it is the count of those at or below u (no branch to mispredict at a
+        # data-dependent exit); uniforms and counts in passes of their own, which
+        # vectorise (the row of e^(4^c) terms is free for the uniforms by now)
+        uv = buf[K + 1, :n]
+        for t in range(n):
+            uv[t] = uniform(key, base + lo + t) * tots[t]
+        cv = crow[lo:hi]
+        for t in range(n):
+            cv[t] = 0
+        for q in range(K - 1):
+            sq = buf[1 + q, :n]
+            for t in range(n):
+                cv[t] += sq[t] <= uv[t]
     prod = 1.0
     acc = 0.0
+    nfast = 0
     for t in range(n):
         tot = tots[t]
-        j = lo + t
         if tot > _LADDER_TINY:
             prod *= tot
             if not (_PROD_LO <= prod <= _PROD_HI):
                 acc -= np.log(prod)
                 prod = 1.0
-            acc -= lmax
-            if draw:
-                # the first c whose running sum exceeds u: the running sums do not
-                # decrease, so it is the count of those at or below u (no branch to
-                # mispredict at a data-dependent exit)
-                u = uniform(key, base + j) * tot
-                c = 0
-                for q in range(K - 1):
-                    c += buf[1 + q, t] <= u
-                crow[j] = c
-        else:
+            nfast += 1
+        else:  # far in the tail: the general path (its draw replaces the count)
             m, tot, c = _gsm_clique(la, pr, lam, d2v[t], 1.0, lp)
             acc -= m + np.log(tot)
             if draw:
-                crow[j] = _pick(lp, uniform(key, base + j) * tot)
-    return acc - np.log(prod)
+                crow[lo + t] = _pick(lp, uniform(key, base + lo + t) * tot)
+    return acc - lmax * nfast - np.log(prod)
 
 
 @njit(parallel=True, cache=True)
@@ -990,6 +996,26 @@ def ladder4(prec):
     prec = np.asarray(prec, dtype=np.float64)
     K = prec.shape[-1]
     return bool(np.all(prec == prec[..., :1] * 4.0 ** np.arange(K)))
+
+
+@njit(parallel=True, cache=True)
+def tally_moments(s1, s2, sv, mu, x):
+    """``s1 += mu``, ``s2 += mu^2``, ``sv += (x - mu)^2`` elementwise, in one pass.
+
+    The running sums of :class:`mrfclean.models.grey.GreyTally` (the same arithmetic
+    as the numpy expressions, element by element, so the same results).
+    """
+    a1 = s1.reshape(-1)
+    a2 = s2.reshape(-1)
+    av = sv.reshape(-1)
+    m = mu.reshape(-1)
+    xs = x.reshape(-1)
+    for i in prange(a1.shape[0]):
+        mi = m[i]
+        a1[i] += mi
+        a2[i] += mi * mi
+        e = xs[i] - mi
+        av[i] += e * e
 
 
 @njit(cache=True)

@@ -360,10 +360,7 @@ class GreyTally(Tally):
         self.n = 0
 
     def add(self, state):
-        self.s1 += state.mu
-        self.s2 += state.mu * state.mu
-        e = state.x - state.mu
-        self.sv += e * e
+        kernels.tally_moments(self.s1, self.s2, self.sv, state.mu, state.x)
         self.n += 1
 
     def merge(self, other):
