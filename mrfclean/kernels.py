@@ -683,27 +683,17 @@ def gmrf_diagonal(w, offsets, dw, curv, cs, out):
                 wrow = w[o, zb, ib]
                 lo, hi = _span(-dj, W)
                 _shifted_add(orow, wrow, lo, hi, -dj)
-        if curv > 0.0 and cs.shape[0] > 0:  # triple weights curv * cs at their middles
-            crow = cs[z, i]
+        if curv > 0.0:  # triple weights curv (times cs at their middles, if given)
+            scaled = cs.shape[0] > 0
             for j in range(W - 2):
-                c = curv * crow[j + 1]
+                c = curv * cs[z, i, j + 1] if scaled else curv
                 orow[j] += c
                 orow[j + 1] += 4.0 * c
                 orow[j + 2] += c
             for c in range(max(0, i - 2), min(i, H - 3) + 1):
                 a = curv * _triple_coef(c, i) ** 2
-                cm = cs[z, c + 1]
                 for j in range(W):
-                    orow[j] += a * cm[j]
-        elif curv > 0.0:
-            for j in range(W - 2):
-                orow[j] += curv
-                orow[j + 1] += 4.0 * curv
-                orow[j + 2] += curv
-            for c in range(max(0, i - 2), min(i, H - 3) + 1):
-                a = _triple_coef(c, i) ** 2
-                for j in range(W):
-                    orow[j] += a * curv
+                    orow[j] += a * cs[z, c + 1, j] if scaled else a
 
 
 #: ``comp`` value of a clique that leaves the lattice (no weight).
