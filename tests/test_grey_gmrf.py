@@ -49,13 +49,17 @@ def second_difference_matrix(shape):
     return sp.vstack([dxx, dyy]).tocsr()
 
 
+def triple_middles(g):
+    """``g`` at the middle pixel of each row of :func:`second_difference_matrix`, in its order."""
+    return np.r_[g[:, :, 1:-1].ravel(), g[:, 1:-1, :].ravel()]
+
+
 def triple_factors(model):
     """Weights of the rows of :func:`second_difference_matrix` under a prior with
     ``noise_ref``: ``noise_ref / v`` at each triple's middle pixel (1 without it)."""
-    g = model.prior.noise_ref / (1.0 / model.dw)
     if not model.prior.noise_ref:
-        g = np.ones(model.grid.shape)
-    return np.r_[g[:, :, 1:-1].ravel(), g[:, 1:-1, :].ravel()]
+        return np.ones(triple_middles(model.dw).shape)
+    return triple_middles(model.prior.noise_ref * model.dw)
 
 
 def sparse_precision(model, weights):
@@ -167,8 +171,7 @@ def test_curvature_perturbation_is_the_transposed_second_differences_of_its_norm
     e_rows = e[:N][(jj < W - 2).ravel()]
     e_cols = e[N:][(ii < H - 2).ravel()]
     C = second_difference_matrix(shape)
-    s = (np.r_[cs[:, :, 1:-1].ravel(), cs[:, 1:-1, :].ravel()] if weighted
-         else np.ones(C.shape[0]))
+    s = triple_middles(cs) if weighted else np.ones(C.shape[0])
     expect = scale * np.sqrt(kappa) * (C.T @ (np.sqrt(s) * np.r_[e_rows, e_cols]))
     np.testing.assert_allclose(out.ravel(), expect, rtol=1e-12, atol=1e-12)
 

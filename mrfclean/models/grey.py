@@ -512,7 +512,7 @@ class GreyModel(ChainModel):
         w = np.ascontiguousarray(self.w if weights is None else weights, dtype=np.float64)
         xs = np.ascontiguousarray(np.asarray(x, dtype=np.float64).reshape(1, *self.grid.shape))
         out = np.empty_like(xs)
-        cs = self.gs if self.gs is not None and self.curv > 0 else np.zeros((0, 0, 0))
+        cs = self.gs if self._cs.size else np.zeros((0, 0, 0))  # float64 twin of _cs
         kernels.gmrf_matvec(xs, w, self.offsets, self.dw, self.curv, cs, out,
                             np.empty((1, self.grid.shape[0] * self.grid.shape[1])))
         return out[0]
