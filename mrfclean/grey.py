@@ -408,6 +408,9 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
             rb = (1e-3 * max(float(np.ptp(y)), 1e-12)) ** 2
         term = PoissonGaussianNoise(float(ga), float(rb))
     pilot = _smooth(y)
+    if isinstance(term, PoissonGaussianNoise) and term.b == 0:
+        # without read noise the floor comes from the whole image, not from each tile
+        term = PoissonGaussianNoise(term.a, 0.0, term.default_floor(pilot))
     low, span = intensity_frame(y, float(np.sqrt(np.mean(term.variance(pilot)))), smooth=pilot)
     if prior is None:
         base = GSMPrior.load()

@@ -463,3 +463,32 @@ def test_poisson_gaussian_setup_stabilises_the_prior_for_this_image_only():
     gauss = grey_setup(y, noise="gaussian", sigma=0.05, strength=0.5, curvature=0.0,
                        prior=carried)
     assert gauss.prior.noise_ref == 0 and "noise_ref" not in gauss.describe()
+
+
+def test_pure_poisson_noise_floors_every_tile_at_the_whole_images_level():
+    """With read variance 0 the noise variance ``a x`` (Foi et al. 2008 with b = 0) is
+    floored at a thousandth of its mean over the whole image, so that a dark tile gets
+    the same model as the whole image, not a floor from its own (much smaller) mean."""
+    from scipy import ndimage
+
+    from mrfclean.grey import grey_setup
+
+    gen = np.random.default_rng(9)
+    x = np.full((48, 48), 0.8)
+    x[:, :24] = 1e-4
+    a = 0.01
+    y = (a * gen.poisson(x / a))[None].astype(np.float64)
+    setup = grey_setup(y, noise="poisson-gaussian", gain=a, read_variance=0.0, strength=0.5,
+                       curvature=0.0)
+    smooth = ndimage.gaussian_filter(y, (0.0, 1.5, 1.5), mode="reflect")
+    floor = 1e-3 * np.mean(a * np.maximum(smooth, 0.0))
+    assert setup.term.floor == pytest.approx(floor, rel=1e-12)
+    assert setup.describe()["variance_floor"] == pytest.approx(floor, rel=1e-12)
+    dark = y[:, :, :20]
+    _, var_u = setup.observed(dark)
+    pilot = ndimage.gaussian_filter(dark, (0.0, 1.5, 1.5), mode="reflect")
+    expect = np.maximum(a * np.maximum(pilot, 0.0), floor) / setup.span**2
+    np.testing.assert_allclose(var_u, expect, rtol=1e-12)
+    own = 1e-3 * np.mean(a * np.maximum(pilot, 0.0))
+    assert own < floor / 10  # the tile's own floor would differ: the check can fail
+    assert np.any(a * np.maximum(pilot, 0.0) < floor)  # and the floor is in force there

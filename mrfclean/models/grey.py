@@ -298,27 +298,39 @@ class GaussianNoise:
 class PoissonGaussianNoise:
     """``Var(y | x) = a x + b``: gain ``a`` times signal (Poisson part) plus read-noise ``b``.
 
-    The variance is evaluated at a pilot estimate of ``x`` and floored at
-    ``floor`` (a fraction of ``b``, or of the mean variance when ``b`` is 0), so
-    that it stays positive where the pilot is below the offset.
+    The variance is evaluated at a pilot estimate of ``x`` and floored, so that
+    it stays positive where the pilot is below the offset: at ``b`` itself when
+    ``b > 0``; when ``b`` is 0, at ``floor`` if given, else at a thousandth of
+    the mean variance of the pilot passed.  The cleaner sets ``floor`` once per
+    image (:func:`mrfclean.grey.grey_setup`), so that the tiles of one image
+    share one noise model.
     """
 
     a: float
     b: float
+    floor: float = 0.0
 
     def __post_init__(self):
         if not (math.isfinite(self.a) and self.a >= 0 and math.isfinite(self.b) and self.b >= 0):
             raise ValueError(f"need a >= 0 and b >= 0, got a={self.a!r}, b={self.b!r}")
         if self.a == 0 and self.b == 0:
             raise ValueError("a and b cannot both be zero")
+        if not (math.isfinite(self.floor) and self.floor >= 0):
+            raise ValueError(f"floor must be a non-negative finite number, got {self.floor!r}")
+
+    def default_floor(self, pilot) -> float:
+        """The floor for a read variance of 0: a thousandth of the mean ``a x`` over ``pilot``."""
+        v = self.a * np.maximum(np.asarray(pilot, dtype=np.float64), 0.0)
+        return 1e-3 * max(float(np.mean(v)), 1e-300)
 
     def variance(self, pilot):
         v = self.a * np.maximum(np.asarray(pilot, dtype=np.float64), 0.0) + self.b
-        floor = self.b if self.b > 0 else 1e-3 * max(float(np.mean(v)), 1e-300)
+        floor = self.b if self.b > 0 else (self.floor or self.default_floor(pilot))
         return np.maximum(v, max(floor, 1e-300))
 
     def describe(self):
-        return {"noise": "poisson-gaussian", "a": float(self.a), "b": float(self.b)}
+        d = {"noise": "poisson-gaussian", "a": float(self.a), "b": float(self.b)}
+        return {**d, "variance_floor": float(self.floor)} if self.floor else d
 
 
 # ---------------------------------------------------------------------------------------
