@@ -437,6 +437,19 @@ class GreyModel(ChainModel):
         perturbation separately, as the Rao-Blackwellised tally needs.  Solved
         exactly, the draws have the same distribution; such a sweep ran 6-19%
         faster on SURE's windows (measured on camera and cell at 512^2).
+    relax : float
+        Over-relaxation ``alpha`` of the image update, in ``(-1, 1)``; 0
+        (default) draws the image afresh.  Otherwise a sweep that solves the
+        mean and the perturbation separately, in a chain that has drawn an
+        image before, moves to ``mu + alpha (x - mu) + sqrt(1 - alpha^2) z``,
+        where ``x`` is the chain's last image, ``mu`` the new conditional mean
+        and ``z ~ N(0, T Q^-1)`` the new perturbation.  That map leaves the
+        conditional ``N(mu, T Q^-1)`` invariant for any ``x`` (Adler 1981), so
+        the chain keeps the posterior exactly; with ``alpha < 0`` successive
+        images lie on opposite sides of ``mu``, which damps the random walk of
+        the scales (Neal 1998).  And as the last image given the new scales is
+        itself a posterior draw, ``(x - mu)^2`` still estimates the conditional
+        variance without bias once the chain is in equilibrium.
 
     Notes
     -----
@@ -450,6 +463,15 @@ class GreyModel(ChainModel):
     noise-stabilised) and the float64 data, chain states and tallies (plus
     the float64 factor image of a noise-stabilised prior).
 
+    References
+    ----------
+    .. [1] S. L. Adler, "Over-relaxation method for the Monte Carlo evaluation
+       of the partition function for multiquadratic actions", Physical Review D
+       23 (1981) 2901-2904.
+    .. [2] R. M. Neal, "Suppressing random walks in Markov chain Monte Carlo
+       using ordered overrelaxation", in Learning in Graphical Models (1998)
+       205-228.
+
     Examples
     --------
     >>> import numpy as np
@@ -460,7 +482,8 @@ class GreyModel(ChainModel):
     """
 
     def __init__(self, observed, *, variance, prior: GSMPrior, starts=None, tol=1e-3,
-                 sample_tol=None, max_iter=500, grid: Grid | None = None, single_solves=0):
+                 sample_tol=None, max_iter=500, grid: Grid | None = None, single_solves=0,
+                 relax=0.0):
         y = np.asarray(observed, dtype=np.float64)
         self.grid = grid or Grid.for_image(y)
         if self.grid.periodic:
@@ -492,6 +515,9 @@ class GreyModel(ChainModel):
             self.tol, MEAN_ERROR_SHARE * math.sqrt(float(self.dw.sum())) / bnorm))
         self.max_iter = int(max_iter)
         self.single_solves = int(single_solves)
+        self.relax = float(relax)
+        if not -1 < self.relax < 1:
+            raise ValueError(f"relax must be in (-1, 1), got {relax!r}")
         self.starts = [np.asarray(s, dtype=np.float64).reshape(self.grid.shape)
                        for s in (starts if starts is not None else [self.y])]
         n = len(self.offsets)
@@ -604,7 +630,11 @@ class GreyModel(ChainModel):
             else:
                 X, it = self.solve(self._rhs, (state.mu, 0.0), (self.mean_tol, self.sample_tol))
                 state.mu[...] = X[0]
-                np.add(X[0], X[1], out=state.x)
+                if self.relax and state.draws > 0:  # from a draw, never from a start image
+                    a = self.relax
+                    state.x[...] = X[0] + a * (state.x - X[0]) + math.sqrt(1 - a * a) * X[1]
+                else:
+                    np.add(X[0], X[1], out=state.x)
             state.draws += 1
         else:
             X, it = self.solve(self.b[None], state.mu[None])
@@ -678,4 +708,5 @@ class GreyModel(ChainModel):
         return X[0].astype(np.float64)
 
     def describe(self):
-        return {**self.prior.describe(), "cg_tol": self.tol, "cg_mean_tol": self.mean_tol, "cg_sample_tol": self.sample_tol}
+        return {**self.prior.describe(), "cg_tol": self.tol, "cg_mean_tol": self.mean_tol,
+                "cg_sample_tol": self.sample_tol, "relax": self.relax}
