@@ -46,6 +46,14 @@ START_WIDTHS = (1.0, 1.4)
 #: 1e-3 on the benchmark crops; 3e-2 lost about 1% of coverage; measured).
 DEFAULT_TOL = 3e-3
 DEFAULT_SAMPLE_TOL = 1e-2
+#: Over-relaxation of the final chains' image updates (see ``GreyModel``'s ``relax``):
+#: exact at any value, and a less noisy posterior mean for the same sweeps.  Measured on
+#: the benchmark's 25 cases (stop 13): +0.014 dB mean PSNR at -0.5 and +0.017 dB at -0.7,
+#: no extra time; coverage 0.952 -> 0.949 and 0.944, median R-hat 1.59 -> 1.57 and 2.16
+#: (at -0.7 the chains' energies move more slowly), so -0.5.  SURE's short chains keep
+#: plain draws: relaxed there, they start too close to their smoothed starts to read the
+#: variance right (-0.16 dB).
+FINAL_RELAX = -0.5
 #: ``noise="auto"`` picks Poisson-Gaussian when the signal-dependent part of the
 #: estimated variance at the image's 90th intensity percentile is at least this
 #: share of the total (common practice: a clear, not a marginal, dependence).
@@ -505,15 +513,17 @@ def sample_block(y, setup: GreySetup, *, method="mean", schedule=None, sweeps=No
     model = GreyModel(u, variance=var_u, prior=setup.prior,
                       starts=[_smooth(u, w) for w in START_WIDTHS],
                       tol=tol, sample_tol=max(tol, DEFAULT_SAMPLE_TOL), grid=grid,
-                      single_solves=burn_in)
+                      single_solves=burn_in, relax=FINAL_RELAX)
     diag = Diagnostics()
     params = dict(model.describe())
     samples = int(samples or DEFAULT_SAMPLES)
     if method == "map":
         schedule = schedule or Geometric(1.0, 0.01)
         sweeps = int(sweeps or DEFAULT_ANNEAL_SWEEPS)
+        model.relax = 0.0  # annealing draws afresh, as it always has
         res = anneal(model, schedule=schedule, sweeps=sweeps, chains=int(chains), seed=seed,
                      progress=progress)
+        model.relax = FINAL_RELAX
         est_u = res.state.x
         diag.final_energy = res.energy
         diag.quench_passes = int(res.run.quench_passes[res.chain])
