@@ -741,6 +741,24 @@ def _gsm_clique(la, pr, lam, d2, it, lp):
 
 
 @njit(inline="always", cache=True)
+def _reflected(lp, c, u, tot):
+    """Ordered over-relaxation of a draw from weights ``lp`` (summed in order to ``tot``).
+
+    ``c`` is the current component and ``u`` a uniform in [0, 1): the point
+    ``lower + u lp[c]`` (``lower`` the weights before ``c``) is uniform on
+    ``[0, tot)`` when ``c`` is drawn from ``lp``, and so is its mirror image
+    ``tot - point``, which is returned for :func:`_pick`.  The move leaves the
+    distribution ``lp / tot`` invariant and satisfies detailed balance (the
+    mirror is its own inverse and keeps length); it anticorrelates successive
+    draws (Neal 1998).
+    """
+    lower = 0.0
+    for q in range(c):
+        lower += lp[q]
+    return tot - (lower + u * lp[c])
+
+
+@njit(inline="always", cache=True)
 def _pick(lp, u):
     """The component whose share of ``lp`` (weights, summed in order) holds ``u`` in [0, sum)."""
     K = lp.shape[0]
@@ -754,14 +772,16 @@ def _pick(lp, u):
 
 @njit(inline="always", cache=True)
 def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, draw, buf,
-                 grow, gnrow, scaled):
+                 grow, gnrow, scaled, reflect):
     """Draw at T = 1 of the cliques ``(j, j + dj)``, ``j`` in ``range(lo, hi)``, on the 4^c ladder.
 
     Returns their prior energy (scales summed out); with ``draw`` False only
     the energy (``crow`` is not touched).  The running sums over the scales
     are built for the whole row at once in ``buf`` (``K + 2`` rows of scratch),
     one scale at a time, so those loops vectorise; each clique's arithmetic is
-    the same as one at a time.  A clique whose sum is below
+    the same as one at a time.  With ``reflect``, each draw is the mirror image
+    of the clique's current component in ``crow`` (see :func:`_reflected`);
+    ``buf`` then has a row more, for those components.  A clique whose sum is below
     :data:`_LADDER_TINY` (all scales far in the tail) takes the general path
     of :func:`_gsm_clique`.  With ``scaled``, each clique's squared difference
     is multiplied by the mean of the prior scales ``grow[j]`` and
@@ -807,9 +827,21 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
         # data-dependent exit); uniforms and counts in passes of their own, which
         # vectorise (the row of e^(4^c) terms is free for the uniforms by now)
         uv = buf[K + 1, :n]
-        for t in range(n):
-            uv[t] = uniform(key, base + lo + t) * tots[t]
         cv = crow[lo:hi]
+        if reflect:
+            cold = buf[K + 2, :n]
+            for t in range(n):
+                c = cv[t]
+                cold[t] = c
+                u = uniform(key, base + lo + t)
+                if c < K:  # the mirror of the point drawn uniformly within c's share
+                    below = buf[c, t] if c > 0 else 0.0
+                    uv[t] = tots[t] - (below + u * (buf[1 + c, t] - below))
+                else:
+                    uv[t] = u * tots[t]
+        else:
+            for t in range(n):
+                uv[t] = uniform(key, base + lo + t) * tots[t]
         for t in range(n):
             cv[t] = 0
         for q in range(K - 1):
@@ -831,13 +863,15 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
             m, tot, c = _gsm_clique(la, pr, lam, d2v[t], 1.0, lp)
             acc -= m + np.log(tot)
             if draw:
-                crow[lo + t] = _pick(lp, uniform(key, base + lo + t) * tot)
+                u = uniform(key, base + lo + t)
+                c = int(buf[K + 2, t]) if reflect else K
+                crow[lo + t] = _pick(lp, _reflected(lp, c, u, tot) if c < K else u * tot)
     return acc - lmax * nfast - np.log(prod)
 
 
 @njit(parallel=True, cache=True)
 def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode, w, comp, rows,
-              amp=_EMPTY2, gs=_EMPTY3):
+              amp=_EMPTY2, gs=_EMPTY3, reflect=False):
     """Shared body of :func:`gsm_draw_components`, :func:`gsm_mean_weights` and the energy.
 
     Rows of the lattice are independent: row ``(z, i)`` owns the cliques whose
@@ -855,6 +889,9 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
 
     ``gs`` (empty: none): per-pixel prior scales; clique ``(p, p + o)`` then
     has precisions ``strength[o] prec[o, c] (gs[p] + gs[p + o]) / 2``.
+
+    ``reflect`` (draw at T > 0): over-relaxed draws, each the mirror image of
+    the clique's current component in ``comp`` (see :func:`_reflected`).
     """
     Z, H, W = x.shape
     scaled = gs.shape[0] > 0
@@ -869,7 +906,7 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
         z = k // H
         i = k - z * H
         lp = np.empty(K)
-        scratch = np.empty((K + 2, W) if fast else (0, 0))
+        scratch = np.empty((K + 3, W) if fast else (0, 0))
         xrow = x[z, i]
         acc = 0.0
         if draw:
@@ -909,7 +946,7 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
             if fast:
                 acc += _ladder_draw(xrow, nrow, dj, lo, hi, amp[o], la, pr, lam, key, base,
                                     comp[o, z, i] if draw else nocomp, lp, draw, scratch,
-                                    grow, gnrow, scaled)
+                                    grow, gnrow, scaled, reflect)
                 continue
             for j in range(lo, hi):
                 d = nrow[j + dj] - xrow[j]
@@ -926,7 +963,10 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
                 m, tot, c = _gsm_clique(la, pr, lam, d2, it if draw else 1.0, lp)
                 if draw:
                     if temperature > 0.0:
-                        c = _pick(lp, uniform(key, base + j) * tot)
+                        u = uniform(key, base + j)
+                        c0 = crow[j]
+                        c = _pick(lp, _reflected(lp, c0, u, tot) if reflect and c0 < K
+                                  else u * tot)
                     crow[j] = c
                     if it != 1.0:  # the energy is untempered: redo the sums at T = 1
                         m, tot, c = _gsm_clique(la, pr, lam, d2, 1.0, lp)
@@ -935,7 +975,7 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
 
 
 def gsm_draw_components(x, y, dw, offsets, logamp, prec, strength, temperature, key, comp,
-                        scale=None):
+                        scale=None, reflect=False):
     """Draw every clique's scale given the image; return the energy of the image.
 
     Clique ``(o, p)`` with difference ``d`` takes component ``c`` with probability
@@ -948,6 +988,12 @@ def gsm_draw_components(x, y, dw, offsets, logamp, prec, strength, temperature, 
     shape of ``x``): per-pixel prior scales ``g``; clique ``(p, p + o)`` then
     has precisions ``strength[o] prec[o, c] (g[p] + g[p + o]) / 2``, in the
     draw, the energy and (given the same ``scale``) :func:`gsm_expand`.
+    With ``reflect`` (T > 0), ``comp`` holds every clique's current component
+    on entry and each draw is its ordered over-relaxation: the mirror image,
+    within the clique's conditional distribution, of a point drawn uniformly
+    within the current component's share (Neal 1998).  Like a plain draw it
+    leaves the conditional distribution invariant, and it anticorrelates
+    successive scales, so averages over a chain converge faster.
 
     Returns ``E(x)``: the prior energy with the scales summed out, at
     temperature 1, plus the data energy ``sum (x - y)^2 dw / 2`` -- computed
@@ -956,7 +1002,8 @@ def gsm_draw_components(x, y, dw, offsets, logamp, prec, strength, temperature, 
     rows = np.empty(x.shape[0] * x.shape[1])
     amp = _ladder_amplitudes(logamp, prec) if float(temperature) == 1.0 else _EMPTY2
     _gsm_rows(x, y, dw, offsets, logamp, prec, strength, float(temperature), np.uint64(key),
-              _GSM_DRAW, _EMPTY4, comp, rows, amp, _EMPTY3 if scale is None else scale)
+              _GSM_DRAW, _EMPTY4, comp, rows, amp, _EMPTY3 if scale is None else scale,
+              bool(reflect) and float(temperature) > 0.0)
     return _ordered_sum(rows)
 
 

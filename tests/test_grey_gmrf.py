@@ -478,6 +478,88 @@ def test_energy_from_the_scale_draw_equals_direct_energy(temperature, spread, cu
         assert m.energy_of(st.x) == pytest.approx(_energy_reference(m, st.x), rel=1e-12)
 
 
+def _mirror_transitions(p):
+    """``T[c, c']``: the chance that a mirrored draw from ``p`` moves component ``c`` to ``c'``.
+
+    Component ``c`` owns ``[F_(c-1), F_c)`` of ``[0, 1)`` (``F`` the cumulative sums);
+    a point uniform there, mirrored to ``1 - point``, lands in ``c'``'s share with
+    probability ``|mirror of c's share and c''s share| / p_c`` (Neal 1998, section 5).
+    """
+    hi = np.cumsum(p)
+    lo = hi - p
+    mlo, mhi = 1 - hi, 1 - lo
+    overlap = np.clip(np.minimum(mhi[:, None], hi[None]) - np.maximum(mlo[:, None], lo[None]), 0, None)
+    return overlap / p[:, None]
+
+
+@pytest.mark.parametrize("temperature, noise_ref", [(1.0, 0.0), (0.5, 0.0), (1.0, 0.4)])
+def test_mirrored_scale_draws_follow_the_exact_transition_probabilities(temperature, noise_ref):
+    """Ordered over-relaxation of one clique's scale (``reflect=True``): from each of the
+    three most probable components, 6000 mirrored draws against the exact transition
+    probabilities of :func:`_mirror_transitions` (chi-square, each check failing by chance
+    one time in 1000).  T = 1 takes the one-exp ladder path, T = 0.5 the general path.  The
+    exact transitions keep ``p`` (``p T = p``, checked), so the draws leave the conditional
+    distribution invariant; and from at least one start the counts must reject the
+    probabilities of a fresh draw, which a plain draw would not."""
+    prior = GSMPrior.load().with_noise_ref(noise_ref)
+    y = np.array([[0.0, 0.08]])
+    v = np.array([[0.5, 2.0]])
+    m = GreyModel(y, variance=v, prior=prior)
+    o = 0
+    factor = noise_ref * (1 / v[0, 0] + 1 / v[0, 1]) / 2 if noise_ref else 1.0
+    lp = (m.logamp[o] - 0.5 * m.strength[o] * m.prec[o] * 0.08**2 * factor) / temperature
+    p = np.exp(lp - lp.max())
+    p /= p.sum()
+    T = _mirror_transitions(p)
+    np.testing.assert_allclose(p @ T, p, atol=1e-12)
+    live = p > 1e-9  # rarer components' shares are lost to rounding in the cumulative sums
+    np.testing.assert_allclose(T[live].sum(axis=1), 1.0, atol=1e-9)
+    comp = np.empty((len(m.offsets), 1, 1, 2), np.uint8)
+    x = y.reshape(1, 1, 2)
+    draws = 6000
+    rejected = []
+    for c0 in np.argsort(p)[::-1][:3]:
+        counts = np.zeros(len(p))
+        for k in range(draws):
+            comp[o, 0, 0, 0] = c0
+            kernels.gsm_draw_components(x, x, m.dw, m.offsets, m.logamp, m.prec, m.strength,
+                                        temperature, np.uint64(kernels.stream_key(79, c0, k)),
+                                        comp, m.gs, True)
+            counts[comp[o, 0, 0, 0]] += 1
+        e = T[c0] * draws
+        keep = e >= 5  # expected counts of 5 or more (common practice)
+        assert counts[~keep].sum() <= max(5 * e[~keep].sum(), 5)
+        if keep.sum() > 1:
+            chi2 = float(np.sum((counts[keep] - e[keep]) ** 2 / e[keep]))
+            assert chi2 < chi2_dist.ppf(0.999, keep.sum() - 1), (c0, counts, e)
+        else:
+            assert counts[keep].sum() >= draws - max(5 * e[~keep].sum(), 5)
+        fresh = p * draws  # what plain draws would give: the test tells the two apart
+        kf = fresh >= 5
+        rejected.append(float(np.sum((counts[kf] - fresh[kf]) ** 2 / fresh[kf]))
+                        > chi2_dist.ppf(0.999, kf.sum() - 1))
+    assert any(rejected)
+
+
+def test_mirrored_far_tail_draw_keeps_the_only_likely_scale():
+    """The far-tail clique of the test below, drawn mirrored from every start component:
+    all but 1e-12 of the probability is on the smallest precision, so every mirrored draw
+    must land there too (the general path's mirror, inside the one-exp row pass)."""
+    prior = GSMPrior.load()
+    y = np.array([[0.0, 15.0]])
+    m = GreyModel(y, variance=1.0, prior=prior)
+    o = 0
+    comp = np.empty((len(m.offsets), 1, 1, 2), np.uint8)
+    x = y.reshape(1, 1, 2)
+    for c0 in range(m.prec.shape[1]):
+        for k in range(50):
+            comp[o, 0, 0, 0] = c0
+            kernels.gsm_draw_components(x, x, m.dw, m.offsets, m.logamp, m.prec, m.strength,
+                                        1.0, np.uint64(kernels.stream_key(80, c0, k)), comp,
+                                        None, True)
+            assert comp[o, 0, 0, 0] == np.argmin(m.prec[o])
+
+
 def test_far_tail_draw_at_unit_temperature_takes_the_general_path():
     """A clique difference of 15 (prior units) at T = 1: the one-exp path's clique sum is below
     its floor (checked here), so the general path draws.  The exact probabilities (numpy, log
@@ -613,10 +695,11 @@ def scale_enumeration(model):
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("relax", [0.0, -0.5])
-def test_gsm_posterior_moments_match_exact_scale_enumeration(relax):
+@pytest.mark.parametrize("relax, reflect", [(0.0, False), (-0.5, True)])
+def test_gsm_posterior_moments_match_exact_scale_enumeration(relax, reflect):
     """The whole sampler (scale draws, block draws, Rao-Blackwellised moments), plain and
-    over-relaxed, with the shipped 8-scale prior on a 2 x 2 image: its 6 cliques (rows,
+    over-relaxed as the final chains run (image update at alpha = -0.5, scales mirrored),
+    with the shipped 8-scale prior on a 2 x 2 image: its 6 cliques (rows,
     columns, both diagonals) have 8^6 = 262144 scale configurations, all summed exactly by
     :func:`scale_enumeration`.  The Monte-Carlo standard error of each moment comes from
     20 batch means in each of 8 chains of 2500 sweeps (160 batches of 125 sweeps, far
@@ -626,7 +709,8 @@ def test_gsm_posterior_moments_match_exact_scale_enumeration(relax):
     configuration is over 20 standard errors away: a sampler of the wrong mixture fails."""
     prior = GSMPrior.load().with_strength(0.3)
     y = np.array([[0.0, 0.22], [0.04, 0.30]])
-    model = GreyModel(y, variance=0.05**2, prior=prior, tol=1e-10, relax=relax, single_solves=1)
+    model = GreyModel(y, variance=0.05**2, prior=prior, tol=1e-10, relax=relax,
+                      reflect_scales=reflect, single_solves=1)
     assert len(model.offsets) == 4 and model.solver_dtype == np.float64
     mean, ex2, mode_mean = scale_enumeration(model)
     C, S, B, nb = 8, 2500, 10, 20

@@ -450,6 +450,16 @@ class GreyModel(ChainModel):
         the scales (Neal 1998).  And as the last image given the new scales is
         itself a posterior draw, ``(x - mu)^2`` still estimates the conditional
         variance without bias once the chain is in equilibrium.
+    reflect_scales : bool
+        Ordered over-relaxation of the scale draws (default False: afresh).
+        Each clique's new component is the mirror image, within its new
+        conditional distribution, of a point drawn uniformly within its current
+        component's share (see :func:`mrfclean.kernels.gsm_draw_components`);
+        a clique whose component sat low in its distribution moves high.  The
+        move leaves every conditional invariant, so the chain keeps the
+        posterior exactly, and it anticorrelates successive scales and with
+        them the conditional means a Rao-Blackwellised average sums (Neal
+        1998).  A chain's first draw, from its starting image, is plain.
 
     Notes
     -----
@@ -483,7 +493,7 @@ class GreyModel(ChainModel):
 
     def __init__(self, observed, *, variance, prior: GSMPrior, starts=None, tol=1e-3,
                  sample_tol=None, max_iter=500, grid: Grid | None = None, single_solves=0,
-                 relax=0.0):
+                 relax=0.0, reflect_scales=False):
         y = np.asarray(observed, dtype=np.float64)
         self.grid = grid or Grid.for_image(y)
         if self.grid.periodic:
@@ -518,6 +528,7 @@ class GreyModel(ChainModel):
         self.relax = float(relax)
         if not -1 < self.relax < 1:
             raise ValueError(f"relax must be in (-1, 1), got {relax!r}")
+        self.reflect_scales = bool(reflect_scales)
         self.starts = [np.asarray(s, dtype=np.float64).reshape(self.grid.shape)
                        for s in (starts if starts is not None else [self.y])]
         n = len(self.offsets)
@@ -583,11 +594,13 @@ class GreyModel(ChainModel):
 
     def _draw_scales(self, state, temperature, key):
         """Scales | image: components into ``state.comp``; the energy of ``x`` comes with them."""
+        reflect = self.reflect_scales and state.comp is not None  # a chain's first draw: plain
         if state.comp is None:
             state.comp = np.empty(self.w.shape, np.uint8)
         state.energy = float(kernels.gsm_draw_components(
             state.x, self.y, self.dw, self.offsets, self.logamp, self.prec, self.strength,
-            float(temperature), np.uint64(key), state.comp, self.gs)) + self._curv_energy(state.x)
+            float(temperature), np.uint64(key), state.comp, self.gs, reflect)
+        ) + self._curv_energy(state.x)
 
     def _curv_energy(self, x):
         """``kappa / 2`` times the summed squared in-plane second differences of ``x``."""
@@ -709,4 +722,5 @@ class GreyModel(ChainModel):
 
     def describe(self):
         return {**self.prior.describe(), "cg_tol": self.tol, "cg_mean_tol": self.mean_tol,
-                "cg_sample_tol": self.sample_tol, "relax": self.relax}
+                "cg_sample_tol": self.sample_tol, "relax": self.relax,
+                "reflect_scales": self.reflect_scales}
