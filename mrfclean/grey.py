@@ -54,6 +54,13 @@ DEFAULT_SAMPLE_TOL = 1e-2
 #: plain draws: relaxed there, they start too close to their smoothed starts to read the
 #: variance right (-0.16 dB).
 FINAL_RELAX = -0.5
+#: Ordered over-relaxation of the final chains' scale draws (see ``GreyModel``'s
+#: ``reflect_scales``), beside the image's: measured on the benchmark's 25 cases (stop 14),
+#: +0.028 dB mean PSNR at no extra time, coverage 0.949 -> 0.951, median R-hat 1.57 -> 1.17
+#: (with the image at -0.7: +0.034 dB but coverage 0.946, R-hat 1.58).  Mirrored in
+#: SURE's chains as well, it lost 0.015 dB (the curvature term dropped on the
+#: Poisson-Gaussian case), so SURE keeps plain draws.
+FINAL_REFLECT = True
 #: ``noise="auto"`` picks Poisson-Gaussian when the signal-dependent part of the
 #: estimated variance at the image's 90th intensity percentile is at least this
 #: share of the total (common practice: a clear, not a marginal, dependence).
@@ -513,17 +520,17 @@ def sample_block(y, setup: GreySetup, *, method="mean", schedule=None, sweeps=No
     model = GreyModel(u, variance=var_u, prior=setup.prior,
                       starts=[_smooth(u, w) for w in START_WIDTHS],
                       tol=tol, sample_tol=max(tol, DEFAULT_SAMPLE_TOL), grid=grid,
-                      single_solves=burn_in, relax=FINAL_RELAX)
+                      single_solves=burn_in, relax=FINAL_RELAX, reflect_scales=FINAL_REFLECT)
     diag = Diagnostics()
     params = dict(model.describe())
     samples = int(samples or DEFAULT_SAMPLES)
     if method == "map":
         schedule = schedule or Geometric(1.0, 0.01)
         sweeps = int(sweeps or DEFAULT_ANNEAL_SWEEPS)
-        model.relax = 0.0  # annealing draws afresh, as it always has
+        model.relax, model.reflect_scales = 0.0, False  # annealing draws afresh
         res = anneal(model, schedule=schedule, sweeps=sweeps, chains=int(chains), seed=seed,
                      progress=progress)
-        model.relax = FINAL_RELAX
+        model.relax, model.reflect_scales = FINAL_RELAX, FINAL_REFLECT
         est_u = res.state.x
         diag.final_energy = res.energy
         diag.quench_passes = int(res.run.quench_passes[res.chain])
