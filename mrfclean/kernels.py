@@ -740,22 +740,35 @@ def _gsm_clique(la, pr, lam, d2, it, lp):
     return m, tot, cm
 
 
+#: Largest double below 1: ``t * _BELOW_ONE`` is the double just below a normal ``t``.
+_BELOW_ONE = 1.0 - 2.0**-53
+
+
+@njit(inline="always", cache=True)
+def _mirror(point, tot):
+    """``tot - point`` kept in ``[0, tot)``: rounding must not put it on ``tot``, where the pick
+    would take the last component whatever its weight (even none)."""
+    return min(max(tot - point, 0.0), tot * _BELOW_ONE)
+
+
 @njit(inline="always", cache=True)
 def _reflected(lp, c, u, tot):
-    """Ordered over-relaxation of a draw from weights ``lp`` (summed in order to ``tot``).
+    """A draw from weights ``lp`` (summed in order to ``tot``) reflected through their CDF.
 
     ``c`` is the current component and ``u`` a uniform in [0, 1): the point
     ``lower + u lp[c]`` (``lower`` the weights before ``c``) is uniform on
     ``[0, tot)`` when ``c`` is drawn from ``lp``, and so is its mirror image
-    ``tot - point``, which is returned for :func:`_pick`.  The move leaves the
-    distribution ``lp / tot`` invariant and satisfies detailed balance (the
-    mirror is its own inverse and keeps length); it anticorrelates successive
-    draws (Neal 1998).
+    ``tot - point`` (kept in ``[0, tot)``), which is returned for :func:`_pick`.
+    The move leaves the distribution ``lp / tot`` invariant and satisfies
+    detailed balance (the mirror is its own inverse and keeps length); it
+    anticorrelates successive draws.  It is the many-candidate limit of
+    ordered over-relaxation (Neal 1998), with the point randomised within
+    the current component's share as a discrete variable needs.
     """
     lower = 0.0
     for q in range(c):
         lower += lp[q]
-    return tot - (lower + u * lp[c])
+    return _mirror(lower + u * lp[c], tot)
 
 
 @njit(inline="always", cache=True)
@@ -777,11 +790,11 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
 
     Returns their prior energy (scales summed out); with ``draw`` False only
     the energy (``crow`` is not touched).  The running sums over the scales
-    are built for the whole row at once in ``buf`` (``K + 2`` rows of scratch),
+    are built for the whole row at once in ``buf`` (``K + 3`` rows of scratch),
     one scale at a time, so those loops vectorise; each clique's arithmetic is
     the same as one at a time.  With ``reflect``, each draw is the mirror image
-    of the clique's current component in ``crow`` (see :func:`_reflected`);
-    ``buf`` then has a row more, for those components.  A clique whose sum is below
+    of the clique's current component in ``crow`` (see :func:`_reflected`),
+    kept in ``buf``'s last row for the general path.  A clique whose sum is below
     :data:`_LADDER_TINY` (all scales far in the tail) takes the general path
     of :func:`_gsm_clique`.  With ``scaled``, each clique's squared difference
     is multiplied by the mean of the prior scales ``grow[j]`` and
@@ -836,7 +849,7 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
                 u = uniform(key, base + lo + t)
                 if c < K:  # the mirror of the point drawn uniformly within c's share
                     below = buf[c, t] if c > 0 else 0.0
-                    uv[t] = tots[t] - (below + u * (buf[1 + c, t] - below))
+                    uv[t] = _mirror(below + u * (buf[1 + c, t] - below), tots[t])
                 else:
                     uv[t] = u * tots[t]
         else:
@@ -989,11 +1002,12 @@ def gsm_draw_components(x, y, dw, offsets, logamp, prec, strength, temperature, 
     has precisions ``strength[o] prec[o, c] (g[p] + g[p + o]) / 2``, in the
     draw, the energy and (given the same ``scale``) :func:`gsm_expand`.
     With ``reflect`` (T > 0), ``comp`` holds every clique's current component
-    on entry and each draw is its ordered over-relaxation: the mirror image,
-    within the clique's conditional distribution, of a point drawn uniformly
-    within the current component's share (Neal 1998).  Like a plain draw it
-    leaves the conditional distribution invariant, and it anticorrelates
-    successive scales, so averages over a chain converge faster.
+    on entry and each draw is its reflection through the clique's conditional
+    CDF: the mirror image of a point drawn uniformly within the current
+    component's share (the many-candidate limit of ordered over-relaxation,
+    Neal 1998).  Like a plain draw it leaves the conditional distribution
+    invariant, and it anticorrelates successive scales, which can make
+    averages over a chain converge faster.
 
     Returns ``E(x)``: the prior energy with the scales summed out, at
     temperature 1, plus the data energy ``sum (x - y)^2 dw / 2`` -- computed

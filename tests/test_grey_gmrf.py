@@ -16,7 +16,7 @@ from scipy import special, stats
 from scipy.stats import chi2 as chi2_dist
 
 from mrfclean import kernels, sampler
-from mrfclean.models.grey import GreyModel, GSMPrior
+from mrfclean.models.grey import GreyModel, GSMPrior, PriorGroup
 
 
 def difference_matrices(shape, offsets):
@@ -541,23 +541,63 @@ def test_mirrored_scale_draws_follow_the_exact_transition_probabilities(temperat
     assert any(rejected)
 
 
-def test_mirrored_far_tail_draw_keeps_the_only_likely_scale():
-    """The far-tail clique of the test below, drawn mirrored from every start component:
-    all but 1e-12 of the probability is on the smallest precision, so every mirrored draw
-    must land there too (the general path's mirror, inside the one-exp row pass)."""
-    prior = GSMPrior.load()
-    y = np.array([[0.0, 15.0]])
-    m = GreyModel(y, variance=1.0, prior=prior)
-    o = 0
-    comp = np.empty((len(m.offsets), 1, 1, 2), np.uint8)
-    x = y.reshape(1, 1, 2)
-    for c0 in range(m.prec.shape[1]):
-        for k in range(50):
-            comp[o, 0, 0, 0] = c0
-            kernels.gsm_draw_components(x, x, m.dw, m.offsets, m.logamp, m.prec, m.strength,
-                                        1.0, np.uint64(kernels.stream_key(80, c0, k)), comp,
-                                        None, True)
-            assert comp[o, 0, 0, 0] == np.argmin(m.prec[o])
+def _mirror_draws(model, d, c0, temperature, draws, stream):
+    """Counts of the components mirrored draws of the horizontal clique of ``[[0, d]]`` take
+    from component ``c0`` (reset before each draw, each with its own stream key)."""
+    x = np.array([[[0.0, d]]])
+    comp = np.empty((len(model.offsets), 1, 1, 2), np.uint8)
+    counts = np.zeros(model.prec.shape[1])
+    for k in range(draws):
+        comp[0, 0, 0, 0] = c0
+        kernels.gsm_draw_components(x, x, model.dw, model.offsets, model.logamp, model.prec,
+                                    model.strength, temperature,
+                                    np.uint64(kernels.stream_key(stream, c0, k)), comp, None, True)
+        counts[comp[0, 0, 0, 0]] += 1
+    return counts
+
+
+def test_mirrored_far_tail_draws_follow_the_exact_transition_probabilities():
+    """A far-tail clique (one-exp sum about 2e-116, below its floor, checked) of a 4-scale
+    ladder prior whose amplitudes leave two live components there, p = (0.3, 0.7): the
+    general path's mirror, inside the one-exp row pass, must give the exact transitions of
+    :func:`_mirror_transitions`: 0 -> 1 always, 1 -> 0 with probability 3/7 (chi-square,
+    failing by chance one time in 1000)."""
+    prec = tuple(4.0**c for c in range(4))
+    prior = GSMPrior((PriorGroup("two live", ((0, 1),), (-200.0 + np.log(3 / 7), 0.0, 0.0, 0.0),
+                                 prec),))
+    d = np.sqrt(400 / 3)  # exp(-d^2 / 2) cubed is e^-200
+    m = GreyModel(np.array([[0.0, d]]), variance=1.0, prior=prior)
+    amp = kernels._ladder_amplitudes(m.logamp, m.prec)
+    assert amp.size and np.sum(amp[0] * np.exp(-0.5 * d * d * m.prec[0])) < 1e-100
+    lp = m.logamp[0] - 0.5 * m.prec[0] * d * d
+    p = np.exp(lp - lp.max())
+    p /= p.sum()
+    np.testing.assert_allclose(p[:2], [0.3, 0.7], rtol=1e-9)
+    T = _mirror_transitions(p[:2] / p[:2].sum())
+    draws = 4000
+    for c0 in (0, 1):
+        counts = _mirror_draws(m, d, c0, 1.0, draws, 80)
+        assert counts[2:].sum() == 0
+        e = T[c0] * draws
+        if c0 == 0:
+            assert counts[1] == draws
+        else:
+            chi2 = float(np.sum((counts[:2] - e) ** 2 / e))
+            assert chi2 < chi2_dist.ppf(0.999, 1), (counts, e)
+
+
+@pytest.mark.parametrize("temperature", [1.0, 0.5])
+def test_mirror_of_a_negligible_component_lands_on_a_live_one(temperature):
+    """A 4-scale ladder prior with amplitudes (e^-60, 1, 1, e^-200) at difference 0.3: the
+    smallest component's share is about e^-60 of the whole, so its mirror lies inside the
+    third component's share (the fourth has e^-140 of the first's weight).  Rounding
+    must not carry the mirrored point onto the total, where the pick would take the last
+    component whatever its weight: every draw from component 0 lands on component 2."""
+    prior = GSMPrior((PriorGroup("tails", ((0, 1),), (-60.0, 0.0, 0.0, -200.0),
+                                 tuple(4.0**c for c in range(4))),))
+    m = GreyModel(np.array([[0.0, 0.3]]), variance=1.0, prior=prior)
+    counts = _mirror_draws(m, 0.3, 0, temperature, 50, 82)
+    assert counts[2] == 50, counts
 
 
 def test_far_tail_draw_at_unit_temperature_takes_the_general_path():
@@ -704,7 +744,8 @@ def test_gsm_posterior_moments_match_exact_scale_enumeration(relax, reflect):
     :func:`scale_enumeration`.  The Monte-Carlo standard error of each moment comes from
     20 batch means in each of 8 chains of 2500 sweeps (160 batches of 125 sweeps, far
     longer than the chains' memory on 4 pixels); every moment must lie within 4 standard
-    errors (each of the 8 checks fails by chance with probability 6e-5).  The errors are
+    errors (with the standard errors from 160 batches, t with 159 degrees of freedom: each
+    of the 8 checks fails by chance with probability 1e-4).  The errors are
     about 0.004 posterior sd, while the conditional mean of the single most probable
     configuration is over 20 standard errors away: a sampler of the wrong mixture fails."""
     prior = GSMPrior.load().with_strength(0.3)

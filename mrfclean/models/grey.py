@@ -451,7 +451,7 @@ class GreyModel(ChainModel):
         itself a posterior draw, ``(x - mu)^2`` still estimates the conditional
         variance without bias once the chain is in equilibrium.
     reflect_scales : bool
-        Ordered over-relaxation of the scale draws (default False: afresh).
+        Scale draws reflected through their conditional CDF (default False: afresh).
         Each clique's new component is the mirror image, within its new
         conditional distribution, of a point drawn uniformly within its current
         component's share (see :func:`mrfclean.kernels.gsm_draw_components`);
