@@ -54,13 +54,22 @@ DEFAULT_SAMPLE_TOL = 1e-2
 #: plain draws: relaxed there, they start too close to their smoothed starts to read the
 #: variance right (-0.16 dB).
 FINAL_RELAX = -0.5
-#: Ordered over-relaxation of the final chains' scale draws (see ``GreyModel``'s
+#: CDF-reflected (mirrored) scale draws in the final chains (see ``GreyModel``'s
 #: ``reflect_scales``), beside the image's: measured on the benchmark's 25 cases (stop 14),
 #: +0.028 dB mean PSNR at no extra time, coverage 0.949 -> 0.951, median R-hat 1.57 -> 1.17
 #: (with the image at -0.7: +0.034 dB but coverage 0.946, R-hat 1.58).  Mirrored in
 #: SURE's chains as well, it lost 0.015 dB (the curvature term dropped on the
 #: Poisson-Gaussian case), so SURE keeps plain draws.
 FINAL_REFLECT = True
+#: SURE's strength walk runs its chains with mirrored scale draws.  Measured at stop 14
+#: (one seed each): +0.019 dB mean PSNR over the benchmark's 25 cases (22 of the 24
+#: Gaussian cases gain or tie, cell at sigma 0.1 +0.15 and +0.03 dB, moon 512^2 at 0.05
+#: +0.16 dB; the Poisson-Gaussian case -0.09 dB) and +0.031 dB (s.e. 0.010) over 96
+#: cases of the prior's training images, for one risk evaluation more where the
+#: curvature term is tried.  The curvature risks keep plain draws, with the prior alone's
+#: risk computed afresh beside them: mirrored there too, the Poisson-Gaussian case lost
+#: its curvature term (-0.97 dB; a near-tie, see DEVELOPERS.md).
+SURE_REFLECT = True
 #: ``noise="auto"`` picks Poisson-Gaussian when the signal-dependent part of the
 #: estimated variance at the image's 90th intensity percentile is at least this
 #: share of the total (common practice: a clear, not a marginal, dependence).
@@ -453,7 +462,8 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         noise_sd = float(np.sqrt(np.mean(var_u)))
         start = (strength_start(noise_sd, signal_roughness(u, var_u)) if prior is None
                  else 0.5)
-        fit = choose_strength(u, var_u, base, start=start, seed=sseed, tol=tol)
+        fit = choose_strength(u, var_u, base, start=start, seed=sseed, tol=tol,
+                              reflect=SURE_REFLECT)
         lam = fit.strength
         setup.sure_table = fit.table
         setup.sure_strength = lam
@@ -467,7 +477,9 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     elif curvature == "auto":
         # the least risk the walk found for the prior alone (the parabola's vertex it
         # settles on is not itself evaluated): one risk fewer than computing it afresh
-        none_risk = min((r for _, r in setup.sure_table), default=None) if setup.sure_table else None
+        # (not when the walk's chains were mirrored: the curvature risks' are plain)
+        none_risk = (min((r for _, r in setup.sure_table), default=None)
+                     if setup.sure_table and not SURE_REFLECT else None)
         cfit = choose_curvature(u, var_u, base.with_strength(lam), seed=sseed, tol=tol,
                                 start=CURVATURE_GUESS / float(np.mean(var_u)), none_risk=none_risk,
                                 strength_factor=CURVATURE_STRENGTH if strength == "auto" else 1.0)

@@ -544,7 +544,7 @@ def sure_window(shape):
 
 def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
                     bounds=(2.0**-8, 2.0**5), crop="auto", crops=4, burn_in=2, samples=2, chains=3,
-                    refine=True, seed=0, tol=1e-3) -> StrengthFit:
+                    refine=True, seed=0, tol=1e-3, reflect=False) -> StrengthFit:
     r"""Prior strength minimising Stein's unbiased risk estimate of the posterior mean.
 
     Starting at ``start``, the strength is multiplied (or divided) by ``step``
@@ -579,6 +579,9 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
     burn_in, samples, chains : int
         Sweeps discarded and kept per chain, and chains per risk (at most
         ``len(SURE_START_WIDTHS)``).
+    reflect : bool
+        The chains mirror their scale draws (reflected through their CDF, see
+        ``GreyModel``'s ``reflect_scales``) instead of drawing them afresh.
 
     Returns
     -------
@@ -591,7 +594,8 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
 
     def risk(lam):
         return _sure_risk(blocks, prior.with_strength(float(lam), blocks[0][2]), seed=seed,
-                          burn_in=burn_in, samples=samples, chains=chains, tol=tol)
+                          burn_in=burn_in, samples=samples, chains=chains, tol=tol,
+                          reflect=reflect)
 
     best, table = _geometric_walk(risk, start, step, bounds, refine)
     return StrengthFit(best, table)
@@ -625,8 +629,11 @@ def _sure_blocks(observed, variance, crop, crops, chains):
             for yc, vc, sz in blocks]
 
 
-def _sure_risk(blocks, prior, *, seed, burn_in, samples, chains, tol):
-    """SURE per pixel of the posterior mean under ``prior``, over the windows ``blocks``."""
+def _sure_risk(blocks, prior, *, seed, burn_in, samples, chains, tol, reflect=False):
+    """SURE per pixel of the posterior mean under ``prior``, over the windows ``blocks``.
+
+    ``reflect``: the chains mirror their scale draws (``GreyModel``'s ``reflect_scales``).
+    """
     from .. import sampler
     from ..models.grey import GreyModel
 
@@ -640,7 +647,7 @@ def _sure_risk(blocks, prior, *, seed, burn_in, samples, chains, tol):
         # 256^2 at sigma 0.05 that bias ranked a weight-12800 curvature term first where it was
         # 0.4 dB worse; at 3e-3 the ranking matched the windows' true errors (measured).
         m = GreyModel(yc, variance=vc, prior=prior, tol=tol, sample_tol=tol,
-                      starts=starts[:chains], single_solves=burn_in)
+                      starts=starts[:chains], single_solves=burn_in, reflect_scales=reflect)
         run = sampler.run(m, sweeps=burn_in + samples, burn_in=burn_in, chains=chains,
                           seed=seed + k, tally=True)
         tot += sure(yc, run.tally.mean64(), run.tally.var64(), vc) * yc.size
@@ -699,7 +706,7 @@ class CurvatureFit:
 
 def choose_curvature(observed, variance, prior: GSMPrior, *, start, step=4.0, shift=3.0,
                      none_risk=None, strength_factor=1 / 3, crop="auto", crops=4, burn_in=2,
-                     samples=2, chains=3, seed=0, tol=1e-3) -> CurvatureFit:
+                     samples=2, chains=3, seed=0, tol=1e-3, reflect=False) -> CurvatureFit:
     r"""Weight of the second-difference term, and the strength beside it, minimising SURE.
 
     The term takes over part of the smoothing, so it is tried at lower
@@ -743,8 +750,9 @@ def choose_curvature(observed, variance, prior: GSMPrior, *, start, step=4.0, sh
         for ``prior`` as it is.
     strength_factor : float
         The first point's strength is ``prior.strength * strength_factor``.
-    crop, crops, burn_in, samples, chains, seed, tol
-        As for :func:`choose_strength`.
+    crop, crops, burn_in, samples, chains, seed, tol, reflect
+        As for :func:`choose_strength` (``none_risk``, when given, must come
+        from chains of the same kind).
 
     Returns
     -------
@@ -760,7 +768,8 @@ def choose_curvature(observed, variance, prior: GSMPrior, *, start, step=4.0, sh
     lam0 = float(prior.strength)
     if none_risk is None:
         none_risk = _sure_risk(blocks, prior.with_strength(lam0, sz), seed=seed,
-                               burn_in=burn_in, samples=samples, chains=chains, tol=tol)
+                               burn_in=burn_in, samples=samples, chains=chains, tol=tol,
+                               reflect=reflect)
     known = {}
 
     def point(i, j):
@@ -772,7 +781,7 @@ def choose_curvature(observed, variance, prior: GSMPrior, *, start, step=4.0, sh
             lam, kappa = point(i, j)
             known[i, j] = _sure_risk(blocks, prior.with_strength(lam, sz).with_curvature(kappa),
                                      seed=seed, burn_in=burn_in, samples=samples, chains=chains,
-                                     tol=tol)
+                                     tol=tol, reflect=reflect)
         return known[i, j]
 
     def fit(best):
