@@ -81,7 +81,10 @@ AUTO_PG_SIGNIFICANCE = 4.0
 #: The strength a typical image needs at a noise level: ``log strength = a + b
 #: log(sigma / span)``, the least-squares line through the strengths SURE chose
 #: on the prior's training images at sigma 0.05, 0.1 and 0.2
-#: (scripts/fit_strength_guess.py; residual sd 1.15 in log strength).
+#: (scripts/fit_strength_guess.py; residual sd 1.15 in log strength).  Fitted to walks
+#: with plain draws; refitted to the mirrored walk (stop 14: (-4.45, -1.20), sd 1.00, and
+#: for STRENGTH_START (-8.41, -0.96, -0.77)) they scored -0.003 dB on the benchmark and
+#: -0.009 dB (s.e. 0.009) on 96 training-image cases, so these stay.
 STRENGTH_GUESS = (-4.140, -0.995)
 #: ... and that residual sd: a strength SURE puts this far above the guess marks
 #: an image smoother than the training images (see CURVATURE_GATE).
