@@ -60,9 +60,8 @@ FINAL_RELAX = -0.5
 #: CDF-reflected (mirrored) scale draws in the final chains (see ``GreyModel``'s
 #: ``reflect_scales``), beside the image's: measured on the benchmark's 25 cases (stop 14),
 #: +0.028 dB mean PSNR at no extra time, coverage 0.949 -> 0.951, median R-hat 1.57 -> 1.17
-#: (with the image at -0.7: +0.034 dB but coverage 0.946, R-hat 1.58).  Mirrored in
-#: SURE's chains as well, it lost 0.015 dB (the curvature term dropped on the
-#: Poisson-Gaussian case), so SURE keeps plain draws.
+#: (with the image at -0.7: +0.034 dB but coverage 0.946, R-hat 1.58).  SURE's strength
+#: walk mirrors its draws too, its curvature risks do not (see SURE_REFLECT).
 FINAL_REFLECT = True
 #: SURE's strength walk runs its chains with mirrored scale draws.  Measured at stop 14
 #: (one seed each): +0.019 dB mean PSNR over the benchmark's 25 cases (22 of the 24
@@ -483,7 +482,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     elif curvature == "auto":
         # the least risk the walk found for the prior alone (the parabola's vertex it
         # settles on is not itself evaluated): one risk fewer than computing it afresh
-        # (not when the walk's chains were mirrored: the curvature risks' are plain)
+        # (not when the walk's chains were mirrored: the curvature risks use plain draws)
         none_risk = (min((r for _, r in setup.sure_table), default=None)
                      if setup.sure_table and not SURE_REFLECT else None)
         cfit = choose_curvature(u, var_u, base.with_strength(lam), seed=sseed, tol=tol,
