@@ -29,11 +29,12 @@ NOISES = ("auto", "gaussian", "poisson-gaussian")
 #: length per chain, burn-in + kept (scripts/chain_lengths.py, twelve 512^2
 #: crops at fixed parameters): 1 + 7 scored 0.035 dB above 3 + 6 for one sweep
 #: less; burn-in 0-3 moved the error by about 0.01 dB (the chains start near
-#: equilibrium), each kept sweep gained about 0.02 dB (with mirrored draws, stop 14:
-#: the seventh gained 0.015 dB on the benchmark, two noise draws, and 0.017 dB on 96
-#: training-image cases, for 6-7% of the time).
+#: equilibrium), each kept sweep gained about 0.02 dB.  Stop 14: 1 + 6, paying for the
+#: mirrored scale draws (FINAL_REFLECT), whose slower draw and longer mean solves cost
+#: 4-7% of the time: with them the seventh kept sweep gained 0.013-0.015 dB on the
+#: benchmark (two noise draws) and 0.017 dB on 96 training-image cases, for 6-7%.
 DEFAULT_BURN_IN = 1
-DEFAULT_SAMPLES = 7
+DEFAULT_SAMPLES = 6
 DEFAULT_CHAINS = 2
 DEFAULT_ANNEAL_SWEEPS = 30
 DEFAULT_LEVEL = 0.95
@@ -58,9 +59,13 @@ DEFAULT_SAMPLE_TOL = 1e-2
 FINAL_RELAX = -0.5
 #: CDF-reflected (mirrored) scale draws in the final chains (see ``GreyModel``'s
 #: ``reflect_scales``), beside the image's: measured on the benchmark's 25 cases (stop 14),
-#: +0.028 dB mean PSNR at no extra time, coverage 0.949 -> 0.951, median R-hat 1.57 -> 1.17
-#: (with the image at -0.7: +0.034 dB but coverage 0.946, R-hat 1.58).  SURE keeps plain
-#: draws (see SURE_REFLECT).
+#: +0.028 dB mean PSNR, coverage 0.949 -> 0.951, median R-hat 1.57 -> 1.17 (with the
+#: image at -0.7: +0.034 dB but coverage 0.946, R-hat 1.58).  It costs time: the draw
+#: with a gather per clique (512^2: 7.2 ms against 5.8) and 3% more solver iterations
+#: (successive conditional means lie further apart), 7% of the final chains' time.
+#: With one kept sweep fewer (DEFAULT_SAMPLES) it is +0.015 dB at 2% less time than
+#: plain draws with seven (paired, 11.1 s against 11.3 s).  SURE keeps plain draws
+#: (see SURE_REFLECT).
 FINAL_REFLECT = True
 #: Whether SURE's strength walk mirrors its chains' scale draws (its curvature risks
 #: then keep plain draws, beside a fresh plain risk of the prior alone).  Measured at
