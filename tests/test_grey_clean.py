@@ -310,8 +310,8 @@ def test_window_risk_matches_exact_sure_of_a_quadratic_prior(chains):
 @pytest.mark.parametrize("reflect", [False, True])
 def test_window_risk_matches_exact_sure_of_a_gsm_posterior(reflect):
     """The SURE windows' risk with the shipped 8-scale prior, plain and with mirrored scale
-    draws (as ``grey_setup``'s strength walk runs them), against SURE computed exactly: on
-    a 2 x 2 image every one of the 8^6 scale configurations is summed by
+    draws (``choose_strength(reflect=True)``, measured and off by default), against SURE
+    computed exactly: on a 2 x 2 image every one of the 8^6 scale configurations is summed by
     ``scale_enumeration`` (the tests of the sampler), which gives the exact posterior mean
     and variances; the divergence identity makes SURE exact from them (Stein 1981).  20
     seeds of 3 chains x (10 + 400) sweeps give the risk a standard error of about 1.1%

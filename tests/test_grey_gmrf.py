@@ -492,6 +492,22 @@ def _mirror_transitions(p):
     return overlap / p[:, None]
 
 
+def _mirror_draws(model, d, c0, temperature, draws, stream):
+    """Counts of the components mirrored draws of the horizontal clique of ``[[0, d]]`` take
+    from component ``c0`` (reset before each draw, each with its own stream key), with the
+    model's per-pixel prior scales if it has them."""
+    x = np.array([[[0.0, d]]])
+    comp = np.empty((len(model.offsets), 1, 1, 2), np.uint8)
+    counts = np.zeros(model.prec.shape[1])
+    for k in range(draws):
+        comp[0, 0, 0, 0] = c0
+        kernels.gsm_draw_components(x, x, model.dw, model.offsets, model.logamp, model.prec,
+                                    model.strength, temperature,
+                                    np.uint64(kernels.stream_key(stream, c0, k)), comp, model.gs, True)
+        counts[comp[0, 0, 0, 0]] += 1
+    return counts
+
+
 @pytest.mark.parametrize("temperature, noise_ref", [(1.0, 0.0), (0.5, 0.0), (1.0, 0.4)])
 def test_mirrored_scale_draws_follow_the_exact_transition_probabilities(temperature, noise_ref):
     """Ordered over-relaxation of one clique's scale (``reflect=True``): from each of the
@@ -514,18 +530,10 @@ def test_mirrored_scale_draws_follow_the_exact_transition_probabilities(temperat
     np.testing.assert_allclose(p @ T, p, atol=1e-12)
     live = p > 1e-9  # rarer components' shares are lost to rounding in the cumulative sums
     np.testing.assert_allclose(T[live].sum(axis=1), 1.0, atol=1e-9)
-    comp = np.empty((len(m.offsets), 1, 1, 2), np.uint8)
-    x = y.reshape(1, 1, 2)
     draws = 6000
     rejected = []
     for c0 in np.argsort(p)[::-1][:3]:
-        counts = np.zeros(len(p))
-        for k in range(draws):
-            comp[o, 0, 0, 0] = c0
-            kernels.gsm_draw_components(x, x, m.dw, m.offsets, m.logamp, m.prec, m.strength,
-                                        temperature, np.uint64(kernels.stream_key(79, c0, k)),
-                                        comp, m.gs, True)
-            counts[comp[o, 0, 0, 0]] += 1
+        counts = _mirror_draws(m, 0.08, c0, temperature, draws, 79)
         e = T[c0] * draws
         keep = e >= 5  # expected counts of 5 or more (common practice)
         assert counts[~keep].sum() <= max(5 * e[~keep].sum(), 5)
@@ -539,21 +547,6 @@ def test_mirrored_scale_draws_follow_the_exact_transition_probabilities(temperat
         rejected.append(float(np.sum((counts[kf] - fresh[kf]) ** 2 / fresh[kf]))
                         > chi2_dist.ppf(0.999, kf.sum() - 1))
     assert any(rejected)
-
-
-def _mirror_draws(model, d, c0, temperature, draws, stream):
-    """Counts of the components mirrored draws of the horizontal clique of ``[[0, d]]`` take
-    from component ``c0`` (reset before each draw, each with its own stream key)."""
-    x = np.array([[[0.0, d]]])
-    comp = np.empty((len(model.offsets), 1, 1, 2), np.uint8)
-    counts = np.zeros(model.prec.shape[1])
-    for k in range(draws):
-        comp[0, 0, 0, 0] = c0
-        kernels.gsm_draw_components(x, x, model.dw, model.offsets, model.logamp, model.prec,
-                                    model.strength, temperature,
-                                    np.uint64(kernels.stream_key(stream, c0, k)), comp, None, True)
-        counts[comp[0, 0, 0, 0]] += 1
-    return counts
 
 
 def test_mirrored_far_tail_draws_follow_the_exact_transition_probabilities():
