@@ -8,7 +8,8 @@ import skimage.data
 from skimage.util import img_as_float
 
 from mrfclean import sampler
-from mrfclean.fit.grey import score_matching_loss, sure
+from mrfclean.fit.grey import (coordinate_search, live_components, score_matching_loss, sure,
+                               with_logamps)
 from mrfclean.grey import clean_grey, credible_interval
 from mrfclean.metrics import psnr
 from mrfclean.models.grey import GreyModel, GSMPrior
@@ -121,6 +122,50 @@ def test_score_matching_gradient_matches_finite_differences():
                      - score_matching_loss(th - e, x, groups, prec)[0]) / 2e-6
                     for e in np.eye(12) * 1e-6])
     assert np.max(np.abs(num - g)) < 1e-6 * np.max(np.abs(g))
+
+
+def test_coordinate_search_reaches_the_optimum_scipy_finds():
+    """Pattern search (Hooke & Jeeves 1961) on a smooth concave score with a
+    coupled Hessian: it ends within its last step (1/64) of the maximiser
+    scipy's L-BFGS finds, and every value it returns is one it evaluated."""
+    from scipy import optimize
+
+    A = np.array([[2.0, 0.6, 0.0], [0.6, 1.0, -0.3], [0.0, -0.3, 0.5]])
+    c = np.array([1.0, -2.0, 0.5])
+    seen = []
+
+    def score(x):
+        return float(c @ x - 0.5 * x @ A @ x)
+
+    x, v, n = coordinate_search(score, np.zeros(3), [2.0 ** -k for k in range(7)],
+                                max_rounds=200, progress=lambda t, f: seen.append((t.copy(), f)))
+    ref = optimize.minimize(lambda t: -score(t), np.zeros(3), method="L-BFGS-B").x
+    assert np.max(np.abs(x - ref)) < 2 * 2.0**-6  # the lattice point nearest the optimum, or next to it
+    assert n == len(seen)
+    assert v == max(f for _, f in seen) and any(np.array_equal(t, x) for t, _ in seen)
+
+
+def test_coordinate_search_keeps_only_moves_that_gain_more_than_min_gain():
+    """A score that rises by 0.01 per unit step: with min_gain 0.02 no move is kept."""
+    x, v, n = coordinate_search(lambda t: 0.01 * t[0], [0.0], [1.0], min_gain=0.02)
+    assert x.tolist() == [0.0] and n == 3  # the start, then up and down once
+    x, v, _ = coordinate_search(lambda t: 0.25 * t[0] - 0.25 * max(t[0] - 3, 0) ** 2, [0.0],
+                                [1.0], min_gain=0.0)
+    assert x.tolist() == [3.0] and v == 0.75  # 3 and 4 score 0.75 exactly: a tie is no gain
+
+
+def test_tuning_moves_only_live_weights_relative_to_each_groups_largest():
+    """Each group's largest weight is its reference and weights below e^-6 of it stay put."""
+    prior = GSMPrior.load()
+    comps = live_components(prior)
+    for g, c in comps:
+        la = prior.groups[g].logamp
+        assert c != int(np.argmax(la)) and la[c] >= max(la) - 6
+    moved = with_logamps(prior, comps, [-1.0] * len(comps))
+    for gi, (a, b) in enumerate(zip(prior.groups, moved.groups)):
+        for c, (u, w) in enumerate(zip(a.logamp, b.logamp)):
+            assert w == (-1.0 if (gi, c) in comps else u)
+    assert all(a.prec == b.prec and a.offsets == b.offsets for a, b in zip(prior.groups, moved.groups))
 
 
 def test_sure_unbiased_for_linear_gaussian_posterior_mean():
