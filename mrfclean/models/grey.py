@@ -97,6 +97,10 @@ NEIGHBOURHOODS = {
 
 #: File name of the learned prior shipped in ``mrfclean/data``.
 PRIOR_FILE = "grey_prior.json"
+#: The same prior with its weights tuned for the cleaner's PSNR on noisy copies of
+#: the training images (scripts/learn_grey_prior.py --tune); the cleaner uses it
+#: for images no smoother than those (see mrfclean.grey.grey_setup).
+TUNED_PRIOR_FILE = "grey_prior_tuned.json"
 #: Conjugate gradients run in float32 when both tolerances are at least this
 #: (float32 resolves 6e-8, so the recursion's rounding stays far below them);
 #: tighter solves, as in the exact-posterior tests, run in float64.
@@ -207,13 +211,17 @@ class GSMPrior:
         return cls(groups, curvature=float(d.get("curvature", 0.0)), meta=meta)
 
     @classmethod
-    def load(cls, path=None):
-        """The learned prior shipped with the package (or one saved at ``path``)."""
+    def load(cls, path=None, *, shipped=PRIOR_FILE):
+        """A prior shipped with the package (or one saved at ``path``).
+
+        ``shipped`` names the package's file: :data:`PRIOR_FILE` (score
+        matching, the default) or :data:`TUNED_PRIOR_FILE`.
+        """
         if path is None:
             # one part per step: a package seen through two folders (a leftover folder of
             # numba cache files after an uninstall) is a MultiplexedPath, whose joinpath
             # takes a single part on Python 3.11
-            text = (resources.files("mrfclean") / "data" / PRIOR_FILE).read_text()
+            text = (resources.files("mrfclean") / "data" / shipped).read_text()
         else:
             with open(path) as f:
                 text = f.read()
