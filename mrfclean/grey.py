@@ -18,7 +18,7 @@ from .estimates import CleanResult, Diagnostics, anneal, record_posterior, sampl
 from .fit.grey import (FLATTEST_SHARE, choose_curvature, choose_strength, estimate_poisson_gaussian,
                        estimate_sigma, signal_roughness)
 from .lattice import Grid
-from .models.grey import GaussianNoise, GreyModel, GSMPrior, PoissonGaussianNoise
+from .models.grey import TUNED_PRIOR_FILE, GaussianNoise, GreyModel, GSMPrior, PoissonGaussianNoise
 from .sampler import to_seed
 from .schedules import Geometric, Schedule
 
@@ -102,6 +102,10 @@ STRENGTH_GUESS_SD = 1.15
 #: 0.5 doublings from SURE's choice on average where the noise-only line
 #: started 2.05 away (measured), so the walk needs fewer risks.
 STRENGTH_START = (-8.62, -0.724, -0.875)
+#: The same line for the tuned prior (:data:`mrfclean.models.grey.TUNED_PRIOR_FILE`),
+#: fitted on the same runs with it (scripts/fit_strength_guess.py --prior tuned;
+#: residual sd 0.89): its strengths come out 2.5-4 times higher.
+TUNED_STRENGTH_START = (-7.046, -0.371, -0.907)
 #: First weight of the second-difference term tried by SURE, times the noise
 #: precision (prototype runs put the best weight at 0.25-2.5 over sigma^2 on
 #: smooth images; on textured ones none helps).
@@ -142,7 +146,7 @@ def strength_guess(noise_sd):
     return float(min(max(math.exp(a + b * math.log(max(noise_sd, 1e-12))), 1 / 16), 4.0))
 
 
-def strength_start(noise_sd, roughness):
+def strength_start(noise_sd, roughness, coef=STRENGTH_START):
     """First strength of the SURE walk with the shipped prior (clipped to 2^-7..2^4).
 
     Parameters
@@ -151,19 +155,21 @@ def strength_start(noise_sd, roughness):
         Noise standard deviation in the prior's units (intensity / span).
     roughness : float
         :func:`mrfclean.fit.grey.signal_roughness` of the image in those units.
+    coef : (float, float, float)
+        ``(a, b, c)``: :data:`STRENGTH_START` (the score-matching prior) or
+        :data:`TUNED_STRENGTH_START`.
 
     Returns
     -------
     float
-        ``exp(a + b log noise_sd + c log roughness)`` with ``(a, b, c) =``
-        :data:`STRENGTH_START`.
+        ``exp(a + b log noise_sd + c log roughness)``.
 
     Examples
     --------
     >>> round(strength_start(0.1, 1e-3), 3)
     0.403
     """
-    a, b, c = STRENGTH_START
+    a, b, c = coef
     v = math.exp(a + b * math.log(max(noise_sd, 1e-12)) + c * math.log(max(roughness, 1e-30)))
     return float(min(max(v, 2.0**-7), 2.0**4))
 
@@ -267,7 +273,14 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
         It helps on smooth specimens (fluorescence-like, few sharp edges) and
         is left out (0) on textured ones.
     prior : GSMPrior or path, optional
-        Default: the prior shipped in ``mrfclean/data/grey_prior.json``.
+        Default: one of the two priors shipped in ``mrfclean/data``.  With
+        strength and curvature on "auto", an image no smoother than the
+        training images (its roughness predicts a strength below the
+        curvature gate) gets ``grey_prior_tuned.json``, whose weights were
+        tuned for this cleaner's PSNR on noisy training images (logged as
+        ``prior`` in ``estimated``); a smoother image, or any strength or
+        curvature set by hand, gets the score-matching ``grey_prior.json``,
+        with which SURE can judge the curvature term.
     schedule : Schedule, optional
         Annealing schedule for ``"map"``; default geometric 1.0 → 0.01.
     sweeps : int, optional
@@ -453,6 +466,18 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         base = GSMPrior.load(prior)
     setup = GreySetup(term, low, span, base, estimated, None, noise_curve)
     u, var_u = setup.observed(y, pilot)
+    noise_sd = float(np.sqrt(np.mean(var_u)))
+    roughness = signal_roughness(u, var_u) if prior is None else None
+    # With nothing set, an image no smoother than the training images gets the prior
+    # tuned for denoising on them; a smoother one keeps the score-matching prior, with
+    # which SURE can judge the curvature term (with the tuned one it cannot; measured
+    # at stop 15, see TUNED_STRENGTH_START and DEVELOPERS.md).  Smoother: the strength
+    # the image's roughness predicts for the score-matching prior is above the gate.
+    tuned = (prior is None and strength == "auto" and curvature == "auto"
+             and strength_start(noise_sd, roughness) < CURVATURE_GATE * strength_guess(noise_sd))
+    if tuned:
+        base = GSMPrior.load(shipped=TUNED_PRIOR_FILE)
+        estimated.append("prior")
     # Under signal-dependent noise the prior acts on the noise-stabilised image (see
     # GSMPrior.noise_ref): over 18 Poisson-Gaussian draws on the benchmark's images
     # +0.34 dB on average (cell 512^2 +1.1 to +1.2, where SURE now takes the curvature
@@ -467,17 +492,16 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
                                else _number("curvature", curvature, positive=False))
     gated = False
     if strength == "auto":
-        # the guesses were fitted for the shipped prior; another prior starts at 0.5
-        noise_sd = float(np.sqrt(np.mean(var_u)))
-        start = (strength_start(noise_sd, signal_roughness(u, var_u)) if prior is None
-                 else 0.5)
+        # the guesses were fitted for the shipped priors; another prior starts at 0.5
+        start = (0.5 if prior is not None else
+                 strength_start(noise_sd, roughness, TUNED_STRENGTH_START if tuned else STRENGTH_START))
         fit = choose_strength(u, var_u, base, start=start, seed=sseed, tol=tol,
                               reflect=SURE_REFLECT)
         lam = fit.strength
         setup.sure_table = fit.table
         setup.sure_strength = lam
         estimated.append("strength")
-        gated = prior is None and lam < CURVATURE_GATE * strength_guess(noise_sd)
+        gated = tuned or (prior is None and lam < CURVATURE_GATE * strength_guess(noise_sd))
     else:
         lam = _number("strength", strength, positive=False)
     if curvature == "auto" and gated:

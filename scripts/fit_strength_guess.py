@@ -7,7 +7,8 @@ a fixed start is regressed on the noise sd in the prior's units,
 of the curvature gate), and on that and the image's estimated roughness ``g``
 (``mrfclean.fit.grey.signal_roughness``), ``log strength = a + b log(sigma /
 span) + c log g`` (``STRENGTH_START``, where the walk starts).  Prints the
-coefficients and residual sds of both lines.
+coefficients and residual sds of both lines.  ``--prior tuned`` fits them for
+the tuned prior (``TUNED_STRENGTH_START``; its noise-only line is not used).
 
 Example
 -------
@@ -26,13 +27,17 @@ from learn_grey_prior import TRAINING, training_images  # noqa: E402
 
 from mrfclean.fit.grey import choose_strength, signal_roughness  # noqa: E402
 from mrfclean.grey import DEFAULT_TOL, grey_setup  # noqa: E402
+from mrfclean.models.grey import PRIOR_FILE, TUNED_PRIOR_FILE, GSMPrior  # noqa: E402
 
 
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--crop", type=int, default=256)
     p.add_argument("--seed", type=int, default=3)
+    p.add_argument("--prior", choices=["score-matching", "tuned"], default="score-matching",
+                   help="which shipped prior to fit the lines for")
     args = p.parse_args(argv)
+    prior = GSMPrior.load(shipped=TUNED_PRIOR_FILE if args.prior == "tuned" else PRIOR_FILE)
     gen = np.random.default_rng(1)
     rows = []
     for name, x in zip(TRAINING, training_images(crop=args.crop, seed=args.seed)):
@@ -40,7 +45,7 @@ def main(argv=None) -> int:
             y = (x + s * gen.standard_normal(x.shape))[None]
             st = grey_setup(y, noise="gaussian", strength=1.0, curvature=0.0, seed=1)
             u, var_u = st.observed(y)
-            lam = choose_strength(u, var_u, st.prior, start=0.5, seed=1 ^ 0x3C3C3C3C,
+            lam = choose_strength(u, var_u, prior, start=0.5, seed=1 ^ 0x3C3C3C3C,
                                   tol=DEFAULT_TOL).strength
             srel = st.term.sigma / st.span
             g = signal_roughness(u, var_u)

@@ -499,7 +499,8 @@ def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
             assert [st.prior.strength, st.prior.curvature] in [t[:2] for t in d["sure_curvature"]]
         else:
             assert len(d["sure_curvature"]) == 2  # the risk without it and one try
-    # the shipped prior: the gate skips the try unless the strength is well above the guess
+    # the shipped priors: the gate skips the try unless the strength is well above the
+    # guess, and always with the tuned prior (chosen for images no smoother than usual)
     from mrfclean.grey import CURVATURE_GATE, strength_guess
 
     for x in (smooth, steps):
@@ -507,12 +508,60 @@ def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
         st = grey_setup(y, seed=3)
         u, v = st.observed(y)
         tried = len(st.curvature_table) > 0
-        assert tried == (st.sure_strength
+        assert tried == ("prior" not in st.estimated and st.sure_strength
                          >= CURVATURE_GATE * strength_guess(float(np.sqrt(np.mean(v)))))
     given = GSMPrior.load().with_curvature(50.0)
     y = (steps + 0.1 * gen.standard_normal(steps.shape))[None]
     assert grey_setup(y, prior=given, seed=3).prior.curvature == 0.0
     assert grey_setup(y, prior=given, curvature=7.0, strength=1.0).prior.curvature == 7.0
+
+
+@pytest.mark.parametrize("name", ["camera", "coins", "cell"])
+def test_nothing_set_picks_the_tuned_prior_unless_the_image_is_smoother_than_usual(name):
+    """With nothing set, the prior tuned for denoising serves images whose roughness
+    predicts a strength below the curvature gate for the score-matching prior (no
+    smoother than the training images); smoother ones (cell) keep the score-matching
+    prior and may take the curvature term.  A strength or curvature set by the user,
+    or a prior given, keeps the score-matching prior.  The choice is logged."""
+    from mrfclean.fit.grey import signal_roughness
+    from mrfclean.grey import CURVATURE_GATE, grey_setup, strength_guess, strength_start
+    from mrfclean.models.grey import TUNED_PRIOR_FILE
+
+    x = img_as_float(getattr(skimage.data, name)())
+    i, j = (x.shape[0] - 192) // 2, (x.shape[1] - 192) // 2
+    x = x[i:i + 192, j:j + 192]
+    y = (x + 0.1 * np.random.default_rng(5).standard_normal(x.shape))[None]
+    st = grey_setup(y, seed=2)
+    u, v = st.observed(y)
+    sd = float(np.sqrt(np.mean(v)))
+    usual = strength_start(sd, signal_roughness(u, v)) < CURVATURE_GATE * strength_guess(sd)
+    # measured: the predicted strength is 0.84 (camera) and 0.63 (coins) times the guess for
+    # the noise level, 6.8 times on cell (gate 3.16)
+    assert usual == (name != "cell")
+    tuned = GSMPrior.load(shipped=TUNED_PRIOR_FILE)
+    assert (st.prior.groups == tuned.groups) == usual
+    assert (st.prior.groups == GSMPrior.load().groups) == (not usual)
+    assert ("prior" in st.estimated) == usual
+    assert (st.describe()["prior_source"] == tuned.meta["source"]) == usual
+    if usual:
+        assert st.curvature_table == [] and st.prior.curvature == 0
+    for kw in ({"strength": 0.5}, {"curvature": 0.0}, {"prior": GSMPrior.load()}):
+        other = grey_setup(y, seed=2, **kw)
+        assert other.prior.groups == GSMPrior.load().groups and "prior" not in other.estimated
+
+
+def test_tuned_prior_differs_from_the_score_matching_one_only_in_its_weights():
+    """The tuned file keeps the score-matching prior's offsets, groups and precision
+    ladder (so the one-exp ladder draw still applies) and records how it was tuned."""
+    from mrfclean import kernels
+    from mrfclean.models.grey import TUNED_PRIOR_FILE
+
+    sm, tuned = GSMPrior.load(), GSMPrior.load(shipped=TUNED_PRIOR_FILE)
+    assert [(g.name, g.offsets, g.prec) for g in sm.groups] == \
+        [(g.name, g.offsets, g.prec) for g in tuned.groups]
+    assert any(a.logamp != b.logamp for a, b in zip(sm.groups, tuned.groups))
+    assert kernels.ladder4(np.array([g.prec for g in tuned.groups]))
+    assert tuned.meta["tuning"]["psnr"] > tuned.meta["tuning"]["start_psnr"]
 
 
 def test_poisson_gaussian_setup_stabilises_the_prior_for_this_image_only():
