@@ -1,29 +1,31 @@
-"""Learn the greyscale GSM-MRF prior shipped in mrfclean/data/grey_prior.json.
+"""Learn the greyscale GSM-MRF priors shipped in mrfclean/data (grey_prior*.json).
 
 Two stages, both on clean images that scikit-image ships, converted to grey in
 [0, 1]; the benchmark images (cell, camera, moon, coins) are never used here.
 
 1. Score matching (Hyvärinen 2005) fits the mixture weights to the images'
    neighbour differences.  It needs no normalising constant, but it fits a
-   density, not a denoiser.  The shipped prior is this stage's output.
-2. ``--tune`` (optional, not used for the shipped prior): the live mixture
-   weights are then moved, one at a time, to raise the mean PSNR of the
-   cleaner itself (``clean_grey(y, prior=..., rng=1)``) on noisy copies of the
-   training images, by the exploratory moves of Hooke & Jeeves' pattern search
+   density, not a denoiser.  This stage made ``grey_prior.json`` (a rerun with
+   today's libraries lands on a slightly different diagonal weight, see
+   DEVELOPERS.md, stop 15, so that file is kept as it was made).
+2. ``--tune``: the live mixture weights are then moved, one at a time, to
+   raise the mean PSNR of the cleaner itself (``clean_grey(y, prior=...,
+   rng=1)``) on noisy copies of the training images, by the exploratory moves
+   of Hooke & Jeeves' pattern search
    (:func:`mrfclean.fit.grey.coordinate_search`).  Fitting a model's
    parameters to the loss of the estimate it is used for is loss-based
    (discriminative) training of a random field (Barbu 2009, IEEE Trans. Image
    Processing 18: 2451-2462); the posterior mean does not depend on the
    prior's normalising constant, so this stage needs none either.  About 20
-   minutes on two cores.  Measured at stop 15 (DEVELOPERS.md): +0.12 dB on
-   the tuning cases and +0.06 dB on held-out ones, +0.07 to +0.31 dB on 20 of
-   the benchmark's 22 cases without the curvature term, but with it SURE no
-   longer takes the curvature term on smooth images (cell at sigma 0.05:
-   -1.7 dB) and the solves need 50% more iterations, so it is not shipped.
+   minutes on two cores.  Its output is ``grey_prior_tuned.json``, which the
+   cleaner uses for images no smoother than the training images (with it,
+   SURE cannot judge the curvature term that smoother images need; see
+   DEVELOPERS.md, stop 15).
 
 Example
 -------
     python scripts/learn_grey_prior.py --out mrfclean/data/grey_prior.json
+    python scripts/learn_grey_prior.py --tune --out mrfclean/data/grey_prior_tuned.json
 """
 
 from __future__ import annotations
@@ -138,7 +140,7 @@ def main(argv=None) -> int:
                         "ladder the sampler draws with one exp per clique)")
     p.add_argument("--scales", type=int, default=8, help="number of mixture scales")
     p.add_argument("--tune", action="store_true",
-                   help="then tune the weights for the cleaner's PSNR (not used for the shipped prior)")
+                   help="then tune the weights for the cleaner's PSNR (grey_prior_tuned.json)")
     p.add_argument("--tune-crop", type=int, default=256)
     p.add_argument("--tune-seed", type=int, default=5)
     p.add_argument("--tune-steps", type=float, nargs="+", default=[1.0, 0.5, 0.25])
