@@ -125,7 +125,7 @@ CURVATURE_GATE = math.exp(STRENGTH_GUESS_SD)
 
 
 def strength_guess(noise_sd):
-    """Starting strength of the SURE walk with the shipped prior (clipped to 1/16..4).
+    """Starting strength of the SURE walk with the score-matching prior (clipped to 1/16..4).
 
     Parameters
     ----------
@@ -147,7 +147,7 @@ def strength_guess(noise_sd):
 
 
 def strength_start(noise_sd, roughness, coef=STRENGTH_START):
-    """First strength of the SURE walk with the shipped prior (clipped to 2^-7..2^4).
+    """First strength of the SURE walk with a shipped prior (clipped to 2^-7..2^4).
 
     Parameters
     ----------
@@ -467,7 +467,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     setup = GreySetup(term, low, span, base, estimated, None, noise_curve)
     u, var_u = setup.observed(y, pilot)
     noise_sd = float(np.sqrt(np.mean(var_u)))
-    roughness = signal_roughness(u, var_u) if prior is None else None
+    roughness = signal_roughness(u, var_u) if prior is None and strength == "auto" else None
     # With nothing set, an image no smoother than the training images gets the prior
     # tuned for denoising on them; a smoother one keeps the score-matching prior, with
     # which SURE can judge the curvature term (with the tuned one it cannot; measured

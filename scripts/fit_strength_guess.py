@@ -53,7 +53,8 @@ def main(argv=None) -> int:
             print(f"{name:22s} sigma {s:4.2f}  sigma/span {srel:.4f}  roughness {g:.3g}  "
                   f"strength {lam:.3f}", flush=True)
     r = np.log(np.array(rows))
-    for label, cols in (("STRENGTH_GUESS", r[:, :1]), ("STRENGTH_START", r[:, :2])):
+    prefix = "TUNED_" if args.prior == "tuned" else ""
+    for label, cols in ((prefix + "STRENGTH_GUESS", r[:, :1]), (prefix + "STRENGTH_START", r[:, :2])):
         A = np.hstack([np.ones((len(r), 1)), cols])
         coef = np.linalg.lstsq(A, r[:, 2], rcond=None)[0]
         resid = r[:, 2] - A @ coef

@@ -5,10 +5,11 @@ Two stages, both on clean images that scikit-image ships, converted to grey in
 
 1. Score matching (Hyvärinen 2005) fits the mixture weights to the images'
    neighbour differences.  It needs no normalising constant, but it fits a
-   density, not a denoiser.  This stage made ``grey_prior.json`` (a rerun with
-   today's libraries lands on a slightly different diagonal weight, see
-   DEVELOPERS.md, stop 15, so that file is kept as it was made).
-2. ``--tune``: the live mixture weights are then moved, one at a time, to
+   density, not a denoiser.  This stage made ``grey_prior.json``.  A rerun
+   with today's libraries lands on other weights where the fit is flat (the
+   diagonal weight at precision 809 is e^-2.1 of its group's largest, not
+   e^-8.7; DEVELOPERS.md, stop 15), so that file is kept as it was made.
+2. ``--tune``: the live mixture weights of the fresh fit are then moved, one at a time, to
    raise the mean PSNR of the cleaner itself (``clean_grey(y, prior=...,
    rng=1)``) on noisy copies of the training images, by the exploratory moves
    of Hooke & Jeeves' pattern search
@@ -122,7 +123,7 @@ def tune(prior, cases, *, steps, min_gain, workers, log=sys.stderr):
         x, best, n = coordinate_search(score, x0, steps, min_gain=min_gain, progress=progress)
     tuned = with_logamps(prior, comps, x)
     return tuned, {"start_psnr": round(seen[0], 4), "psnr": round(best, 4), "evaluations": n,
-                   "moved": [[tuned.groups[g].name, c] for g, c in comps]}
+                   "live": [[tuned.groups[g].name, c] for g, c in comps]}
 
 
 def main(argv=None) -> int:

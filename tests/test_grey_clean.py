@@ -12,7 +12,7 @@ from mrfclean.fit.grey import (coordinate_search, live_components, score_matchin
                                with_logamps)
 from mrfclean.grey import clean_grey, credible_interval
 from mrfclean.metrics import psnr
-from mrfclean.models.grey import GreyModel, GSMPrior
+from mrfclean.models.grey import GreyModel, GSMPrior, PriorGroup
 
 FAST = dict(strength=1.0, curvature=0.0, burn_in=2, samples=4, chains=1)  # one chain: no R-hat on 4 draws
 
@@ -152,6 +152,8 @@ def test_coordinate_search_keeps_only_moves_that_gain_more_than_min_gain():
     x, v, _ = coordinate_search(lambda t: 0.25 * t[0] - 0.25 * max(t[0] - 3, 0) ** 2, [0.0],
                                 [1.0], min_gain=0.0)
     assert x.tolist() == [3.0] and v == 0.75  # 3 and 4 score 0.75 exactly: a tie is no gain
+    x, _, _ = coordinate_search(lambda t: -(abs(t[0]) - 1.0) ** 2, [0.0], [1.0])
+    assert x.tolist() == [1.0]  # up and down gain alike: up is tried first and kept
 
 
 def test_tuning_moves_only_live_weights_relative_to_each_groups_largest():
@@ -161,6 +163,8 @@ def test_tuning_moves_only_live_weights_relative_to_each_groups_largest():
     for g, c in comps:
         la = prior.groups[g].logamp
         assert c != int(np.argmax(la)) and la[c] >= max(la) - 6
+    edge = GSMPrior((PriorGroup("axial", ((0, 1),), (0.0, -6.0, -6.001), (1.0, 4.0, 16.0)),))
+    assert live_components(edge) == [(0, 1)]  # e^-6 of the largest is still live
     moved = with_logamps(prior, comps, [-1.0] * len(comps))
     for gi, (a, b) in enumerate(zip(prior.groups, moved.groups)):
         for c, (u, w) in enumerate(zip(a.logamp, b.logamp)):
@@ -366,7 +370,7 @@ def test_window_risk_matches_exact_sure_of_a_gsm_posterior(reflect):
     from test_grey_gmrf import scale_enumeration
 
     from mrfclean.fit.grey import _sure_blocks, _sure_risk, sure
-    from mrfclean.models.grey import GreyModel, GSMPrior
+    from mrfclean.models.grey import GreyModel, GSMPrior, PriorGroup
 
     y = np.array([[0.0, 0.22], [0.04, 0.30]])
     v = 0.05**2
@@ -545,9 +549,33 @@ def test_nothing_set_picks_the_tuned_prior_unless_the_image_is_smoother_than_usu
     assert (st.describe()["prior_source"] == tuned.meta["source"]) == usual
     if usual:
         assert st.curvature_table == [] and st.prior.curvature == 0
+        # its walk starts from the line fitted for it (the first risk is at the start)
+        from mrfclean.grey import TUNED_STRENGTH_START
+
+        g = signal_roughness(u, v)
+        assert any(math.isclose(lam, strength_start(sd, g, TUNED_STRENGTH_START))
+                   for lam, _ in st.sure_table)
+        assert not any(math.isclose(lam, strength_start(sd, g)) for lam, _ in st.sure_table)
     for kw in ({"strength": 0.5}, {"curvature": 0.0}, {"prior": GSMPrior.load()}):
         other = grey_setup(y, seed=2, **kw)
         assert other.prior.groups == GSMPrior.load().groups and "prior" not in other.estimated
+
+
+@pytest.mark.filterwarnings("ignore::mrfclean.diagnostics.ChainsDisagree")  # short chains
+@pytest.mark.parametrize("seed", [0, 1])
+def test_tuned_prior_beats_score_matching_on_camera_at_high_noise(seed):
+    """Against the clean skimage.data camera (central 192^2 crop, sigma 0.2, never a
+    training image): the default cleaner (the tuned prior) beats the score-matching
+    prior, both with every parameter chosen by SURE.  Measured on four noise draws:
+    +0.23 to +0.39 dB (coins: +0.19 to +0.28); floor +0.1 dB."""
+    x = img_as_float(skimage.data.camera())
+    i, j = (x.shape[0] - 192) // 2, (x.shape[1] - 192) // 2
+    x = x[i:i + 192, j:j + 192]
+    y = x + 0.2 * np.random.default_rng(seed).standard_normal(x.shape)
+    tuned = clean_grey(y, rng=1)
+    plain = clean_grey(y, rng=1, prior=GSMPrior.load())
+    assert "prior" in tuned.params["estimated"]
+    assert psnr(x, tuned.mean, data_range=1.0) > psnr(x, plain.mean, data_range=1.0) + 0.1
 
 
 def test_tuned_prior_differs_from_the_score_matching_one_only_in_its_weights():
@@ -562,6 +590,8 @@ def test_tuned_prior_differs_from_the_score_matching_one_only_in_its_weights():
     assert any(a.logamp != b.logamp for a, b in zip(sm.groups, tuned.groups))
     assert kernels.ladder4(np.array([g.prec for g in tuned.groups]))
     assert tuned.meta["tuning"]["psnr"] > tuned.meta["tuning"]["start_psnr"]
+    with pytest.raises(ValueError, match="no shipped prior"):
+        GSMPrior.load(shipped="other.json")
 
 
 def test_poisson_gaussian_setup_stabilises_the_prior_for_this_image_only():

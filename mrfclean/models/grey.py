@@ -97,9 +97,11 @@ NEIGHBOURHOODS = {
 
 #: File name of the learned prior shipped in ``mrfclean/data``.
 PRIOR_FILE = "grey_prior.json"
-#: The same prior with its weights tuned for the cleaner's PSNR on noisy copies of
-#: the training images (scripts/learn_grey_prior.py --tune); the cleaner uses it
-#: for images no smoother than those (see mrfclean.grey.grey_setup).
+#: A fresh score-matching fit of the same form (its weights differ from
+#: PRIOR_FILE's: a rerun with today's libraries), its live weights then tuned for
+#: the cleaner's PSNR on noisy copies of the training images
+#: (scripts/learn_grey_prior.py --tune); the cleaner uses it for images no
+#: smoother than those (see mrfclean.grey.grey_setup).
 TUNED_PRIOR_FILE = "grey_prior_tuned.json"
 #: Conjugate gradients run in float32 when both tolerances are at least this
 #: (float32 resolves 6e-8, so the recursion's rounding stays far below them);
@@ -217,6 +219,8 @@ class GSMPrior:
         ``shipped`` names the package's file: :data:`PRIOR_FILE` (score
         matching, the default) or :data:`TUNED_PRIOR_FILE`.
         """
+        if shipped not in (PRIOR_FILE, TUNED_PRIOR_FILE):
+            raise ValueError(f"no shipped prior named {shipped!r}")
         if path is None:
             # one part per step: a package seen through two folders (a leftover folder of
             # numba cache files after an uninstall) is a MultiplexedPath, whose joinpath
