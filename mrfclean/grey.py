@@ -468,8 +468,8 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     u, var_u = setup.observed(y, pilot)
     noise_sd = float(np.sqrt(np.mean(var_u)))
     roughness = signal_roughness(u, var_u) if prior is None and strength == "auto" else None
-    # With nothing set, an image no smoother than the training images gets the prior
-    # tuned for denoising on them; a smoother one keeps the score-matching prior, with
+    # With strength and curvature on "auto" and no prior given, an image no smoother
+    # than the training images gets the prior tuned for denoising on them; a smoother one keeps the score-matching prior, with
     # which SURE can judge the curvature term (with the tuned one it cannot; measured
     # at stop 15, see TUNED_STRENGTH_START and DEVELOPERS.md).  Smoother: the strength
     # the image's roughness predicts for the score-matching prior is above the gate.
