@@ -370,7 +370,7 @@ def test_window_risk_matches_exact_sure_of_a_gsm_posterior(reflect):
     from test_grey_gmrf import scale_enumeration
 
     from mrfclean.fit.grey import _sure_blocks, _sure_risk, sure
-    from mrfclean.models.grey import GreyModel, GSMPrior, PriorGroup
+    from mrfclean.models.grey import GreyModel, GSMPrior
 
     y = np.array([[0.0, 0.22], [0.04, 0.30]])
     v = 0.05**2
