@@ -18,7 +18,8 @@ from .estimates import CleanResult, Diagnostics, anneal, record_posterior, sampl
 from .fit.grey import (FLATTEST_SHARE, choose_curvature, choose_strength, estimate_poisson_gaussian,
                        estimate_sigma, signal_roughness)
 from .lattice import Grid
-from .models.grey import TUNED_PRIOR_FILE, GaussianNoise, GreyModel, GSMPrior, PoissonGaussianNoise
+from .models.grey import (PRIOR_FILE, TUNED_PRIOR_FILE, GaussianNoise, GreyModel, GSMPrior,
+                          PoissonGaussianNoise)
 from .sampler import to_seed
 from .schedules import Geometric, Schedule
 
@@ -458,25 +459,25 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         # without read noise the floor comes from the whole image, not from each tile
         term = PoissonGaussianNoise(term.a, 0.0, term.default_floor(pilot))
     low, span = intensity_frame(y, float(np.sqrt(np.mean(term.variance(pilot)))), smooth=pilot)
-    if prior is None:
-        base = GSMPrior.load()
-    elif isinstance(prior, GSMPrior):
-        base = prior
-    else:
-        base = GSMPrior.load(prior)
-    setup = GreySetup(term, low, span, base, estimated, None, noise_curve)
+    setup = GreySetup(term, low, span, None, estimated, None, noise_curve)  # prior: below
     u, var_u = setup.observed(y, pilot)
     noise_sd = float(np.sqrt(np.mean(var_u)))
     roughness = signal_roughness(u, var_u) if prior is None and strength == "auto" else None
     # With strength and curvature on "auto" and no prior given, an image no smoother
-    # than the training images gets the prior tuned for denoising on them; a smoother one keeps the score-matching prior, with
-    # which SURE can judge the curvature term (with the tuned one it cannot; measured
-    # at stop 15, see TUNED_STRENGTH_START and DEVELOPERS.md).  Smoother: the strength
-    # the image's roughness predicts for the score-matching prior is above the gate.
+    # than the training images gets the prior tuned for denoising on them; a smoother
+    # one keeps the score-matching prior, with which SURE can judge the curvature term
+    # (with the tuned one it cannot; measured at stop 15, see TUNED_STRENGTH_START and
+    # DEVELOPERS.md).  Smoother: the strength the image's roughness predicts for the
+    # score-matching prior is above the gate.
     tuned = (prior is None and strength == "auto" and curvature == "auto"
              and strength_start(noise_sd, roughness) < CURVATURE_GATE * strength_guess(noise_sd))
+    if prior is None:
+        base = GSMPrior.load(shipped=TUNED_PRIOR_FILE if tuned else PRIOR_FILE)
+    elif isinstance(prior, GSMPrior):
+        base = prior
+    else:
+        base = GSMPrior.load(prior)
     if tuned:
-        base = GSMPrior.load(shipped=TUNED_PRIOR_FILE)
         estimated.append("prior")
     # Under signal-dependent noise the prior acts on the noise-stabilised image (see
     # GSMPrior.noise_ref): over 18 Poisson-Gaussian draws on the benchmark's images
