@@ -595,10 +595,16 @@ def sure(observed, mean, variance, noise_variance) -> float:
 
 @dataclass
 class StrengthFit:
-    """Strength chosen by SURE and the (strength, SURE per pixel) pairs tried."""
+    """Strength chosen by SURE and the ``[strength, risk]`` pairs tried.
+
+    ``risk`` is what the walk minimised (SURE per pixel less ``spread_share``
+    times the mean's Monte-Carlo variance, see :func:`choose_strength`);
+    ``sure`` holds the plain SURE of the same strengths, in the same order.
+    """
 
     strength: float
     table: list
+    sure: list | None = None
 
 
 def _crop_windows(shape, size, count):
@@ -652,7 +658,7 @@ def sure_window(shape):
 
 def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
                     bounds=(2.0**-8, 2.0**5), crop="auto", crops=4, burn_in=2, samples=2, chains=3,
-                    refine=True, seed=0, tol=1e-3, reflect=False) -> StrengthFit:
+                    refine=True, seed=0, tol=1e-3, reflect=False, spread_share=0.0) -> StrengthFit:
     r"""Prior strength minimising Stein's unbiased risk estimate of the posterior mean.
 
     Starting at ``start``, the strength is multiplied (or divided) by ``step``
@@ -690,6 +696,12 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
     reflect : bool
         The chains mirror their scale draws (reflected through their CDF, see
         ``GreyModel``'s ``reflect_scales``) instead of drawing them afresh.
+    spread_share : float
+        The walk minimises SURE less this multiple of the Monte-Carlo variance
+        of the windows' mean, read from the spread of the chains' own means.
+        That variance inflates the residual term of SURE, most at low
+        strengths; ``mrfclean.grey`` passes :data:`mrfclean.grey.SPREAD_SHARE`
+        (see there for what was measured).
 
     Returns
     -------
@@ -700,13 +712,17 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
         raise ValueError(f"need step > 1 and bounds[0] <= start <= bounds[1], got {step}, {bounds}, {start}")
     blocks = _sure_blocks(observed, variance, crop, crops, chains)
 
+    plain = {}
+
     def risk(lam):
-        return _sure_risk(blocks, prior.with_strength(float(lam), blocks[0][2]), seed=seed,
-                          burn_in=burn_in, samples=samples, chains=chains, tol=tol,
-                          reflect=reflect)
+        r, mc = _sure_risk(blocks, prior.with_strength(float(lam), blocks[0][2]), seed=seed,
+                           burn_in=burn_in, samples=samples, chains=chains, tol=tol,
+                           reflect=reflect, spread=True)
+        plain[float(lam)] = r
+        return r - spread_share * mc
 
     best, table = _geometric_walk(risk, start, step, bounds, refine)
-    return StrengthFit(best, table)
+    return StrengthFit(best, table, [[v, plain[v]] for v, _ in table])
 
 
 def _sure_blocks(observed, variance, crop, crops, chains):
@@ -737,30 +753,55 @@ def _sure_blocks(observed, variance, crop, crops, chains):
             for yc, vc, sz in blocks]
 
 
-def _sure_risk(blocks, prior, *, seed, burn_in, samples, chains, tol, reflect=False):
+def _chain_tallies(y, variance, starts, prior, *, seed, burn_in, samples, tol, reflect=False):
+    """One posterior tally per start: temperature-1 chains as :func:`mrfclean.sampler.run`
+    drives them (chain ``c`` from ``starts[c]``), each with a tally of its own."""
+    from .. import sampler
+    from ..models.grey import GreyModel
+    from ..schedules import Constant
+
+    # The draws solve to ``tol`` too, not to the final chains' looser 1e-2: conjugate
+    # gradients from zero stop short of the draw's full spread, so a loose solve reads the
+    # posterior variance, hence the divergence, low, and most so for stiff priors.  On cell
+    # 256^2 at sigma 0.05 that bias ranked a weight-12800 curvature term first where it was
+    # 0.4 dB worse; at 3e-3 the ranking matched the windows' true errors (measured).
+    m = GreyModel(y, variance=variance, prior=prior, tol=tol, sample_tol=tol, starts=starts,
+                  single_solves=burn_in, reflect_scales=reflect)
+    tallies = []
+    with sampler.kernel_threads(m.grid.size):
+        for c in range(len(starts)):
+            tallies.append(m.tally())
+            for st in sampler.iterate(m, Constant(1.0), sweeps=burn_in + samples, chain=c,
+                                      seed=seed, burn_in=burn_in):
+                if st.sampling:
+                    tallies[-1].add(st.state)
+    return tallies
+
+
+def _sure_risk(blocks, prior, *, seed, burn_in, samples, chains, tol, reflect=False,
+               spread=False):
     """SURE per pixel of the posterior mean under ``prior``, over the windows ``blocks``.
 
     ``reflect``: the chains mirror their scale draws (``GreyModel``'s ``reflect_scales``).
+    ``spread``: also return the Monte-Carlo variance of the mean per pixel, from
+    the spread of the chains' own means (0 with one chain): ``(risk, spread)``.
     """
-    from .. import sampler
-    from ..models.grey import GreyModel
-
-    tot, n = 0.0, 0
+    tot, mc, n = 0.0, 0.0, 0
     for k, (yc, vc, _, starts) in enumerate(blocks):
         if len(starts) < chains:
             raise ValueError(f"windows made for {len(starts)} chains, asked for {chains}")
-        # The draws solve to ``tol`` too, not to the final chains' looser 1e-2: conjugate
-        # gradients from zero stop short of the draw's full spread, so a loose solve reads the
-        # posterior variance, hence the divergence, low, and most so for stiff priors.  On cell
-        # 256^2 at sigma 0.05 that bias ranked a weight-12800 curvature term first where it was
-        # 0.4 dB worse; at 3e-3 the ranking matched the windows' true errors (measured).
-        m = GreyModel(yc, variance=vc, prior=prior, tol=tol, sample_tol=tol,
-                      starts=starts[:chains], single_solves=burn_in, reflect_scales=reflect)
-        run = sampler.run(m, sweeps=burn_in + samples, burn_in=burn_in, chains=chains,
-                          seed=seed + k, tally=True)
-        tot += sure(yc, run.tally.mean64(), run.tally.var64(), vc) * yc.size
+        tallies = _chain_tallies(yc, vc, starts[:chains], prior, seed=seed + k,
+                                 burn_in=burn_in, samples=samples, tol=tol, reflect=reflect)
+        means = [t.mean64() for t in tallies]
+        total = tallies[0]
+        for t in tallies[1:]:
+            total.merge(t)
+        mu = total.mean64()
+        tot += sure(yc, mu, total.var64(), vc) * yc.size
+        if chains > 1:  # the squared standard error of a mean of independent replicates
+            mc += sum(float(np.sum((m_ - mu) ** 2)) for m_ in means) / (chains * (chains - 1))
         n += yc.size
-    return tot / n
+    return (tot / n, mc / n) if spread else tot / n
 
 
 def _geometric_walk(risk, start, step, bounds, refine, known=None):
