@@ -77,18 +77,18 @@ FINAL_REFLECT = True
 #: target has no margin on some machines (DEVELOPERS.md).  Mirrored everywhere in SURE
 #: (no fresh risk), the Poisson-Gaussian case lost its curvature term on two noise draws.
 SURE_REFLECT = False
-#: SURE's strength walk minimises SURE less this multiple of the Monte-Carlo variance of
-#: its windows' mean (the spread of its chains' means; ``choose_strength``'s
-#: ``spread_share``).  That variance inflates SURE's residual term, most at low strength,
-#: so the walk chose about 10% higher strengths than the cleaner's best.  Measured at
-#: stop 16 on held-out cases of the prior's training images (384^2 crops, 48 cases per
-#: seed): +0.034 dB mean PSNR (s.e. 0.006, 40 of 48 gain) with seed 6, +0.038 (s.e. 0.008,
-#: 37 of 48) with seed 8; share 2: +0.047 but single cases lost up to 0.35 dB.  It is an
-#: empirical correction: for chains at equilibrium the pooled variance would read low by
-#: the same amount and the two would cancel, and adding the spread (share -1) lost 0.052
-#: dB; the walk's short chains are not at equilibrium.  The curvature risks keep plain
-#: SURE: with the correction there, the stiffer curvature chains (smaller spread) lost
-#: their term on smooth images.
+#: SURE's strength walk minimises SURE less this multiple of the spread of its chains'
+#: means (``choose_strength``'s ``spread_share``: the Monte-Carlo variance of the windows'
+#: mean plus what is left of the chains' different starts).  An empirical correction, not
+#: a bias correction: for chains at equilibrium plain SURE reads low by that variance
+#: (the residual high by it, the pooled variance, counted twice, low by it), so theory
+#: would add it.  Measured at stop 16 on held-out cases of the prior's training images
+#: (384^2 crops, 48 cases per seed): subtracting it, +0.034 dB mean PSNR (s.e. 0.006, 40
+#: of 48 gain) with seed 6 and +0.038 (s.e. 0.008, 37 of 48) with seed 8, the chosen
+#: strengths about 10% lower; adding it (share -1), -0.052 dB; share 2, +0.047 but single
+#: cases lost up to 0.35 dB.  The walk's 2 + 2-sweep chains are far from equilibrium
+#: (DEVELOPERS.md).  The curvature risks keep plain SURE: with the correction there, the
+#: stiffer curvature chains (smaller spread) lost their term on smooth images.
 SPREAD_SHARE = 1.0
 #: ``noise="auto"`` picks Poisson-Gaussian when the signal-dependent part of the
 #: estimated variance at the image's 90th intensity percentile is at least this
@@ -276,8 +276,9 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
         fitted from the image (after Foi et al. 2008).
     strength : float or "auto"
         Multiplier of the learned prior's precisions; ``"auto"``: the minimiser
-        of Stein's unbiased risk estimate (Stein 1981), found by a walk over
-        strengths in factors of 2 from short posterior runs on crops (see
+        of Stein's unbiased risk estimate (Stein 1981) less the spread of its
+        chains' means (:data:`SPREAD_SHARE`), found by a walk over strengths in
+        factors of 2 from short posterior runs on crops (see
         :func:`mrfclean.fit.grey.choose_strength`).
     curvature : float or "auto"
         Weight of the quadratic second-difference term (in the prior's units,
@@ -371,8 +372,10 @@ class GreySetup:
 
     Tiles of one image share it, so that every tile has the same model.
     ``low`` and ``span`` map intensities to the prior's units, ``u = (y - low) / span``;
-    ``sure_table``, ``curvature_table`` and ``noise_curve`` record how the
-    strength, the curvature weight and the noise were chosen (None when given);
+    ``sure_table`` (``[strength, SURE]``), ``sure_walk`` (``[strength, what the
+    walk minimised]``, see :data:`SPREAD_SHARE`), ``curvature_table`` and
+    ``noise_curve`` record how the strength, the curvature weight and the noise
+    were chosen (None when given);
     ``sure_strength`` is the strength SURE chose before the curvature term was
     tried (the prior's own strength unless the term was taken).
     """
@@ -386,6 +389,7 @@ class GreySetup:
     noise_curve: dict | None = None
     curvature_table: list | None = None
     sure_strength: float | None = None
+    sure_walk: list | None = None
 
     def observed(self, y, smooth=None):
         """``(u, var_u)``: a block of physical intensities in the prior's units and its noise
@@ -399,6 +403,7 @@ class GreySetup:
              "intensity_span": self.span, "estimated": list(self.estimated)}
         if self.sure_table is not None:
             d["sure"] = self.sure_table
+            d["sure_walk"] = self.sure_walk
             d["sure_strength"] = self.sure_strength
         if self.curvature_table is not None:
             d["sure_curvature"] = self.curvature_table
@@ -512,7 +517,8 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         fit = choose_strength(u, var_u, base, start=start, seed=sseed, tol=tol,
                               reflect=SURE_REFLECT, spread_share=SPREAD_SHARE)
         lam = fit.strength
-        setup.sure_table = fit.table
+        setup.sure_table = fit.sure
+        setup.sure_walk = fit.table
         setup.sure_strength = lam
         estimated.append("strength")
         gated = tuned or (prior is None and lam < CURVATURE_GATE * strength_guess(noise_sd))
@@ -525,7 +531,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         # the least plain SURE the walk found for the prior alone (the parabola's vertex
         # it settles on is not itself evaluated): one risk fewer than computing it afresh
         # (not when the walk's chains were mirrored: the curvature risks use plain draws)
-        none_risk = (min((r for _, r in fit.sure), default=None)
+        none_risk = (min((r for _, r in setup.sure_table), default=None)
                      if strength == "auto" and not SURE_REFLECT else None)
         cfit = choose_curvature(u, var_u, base.with_strength(lam), seed=sseed, tol=tol,
                                 start=CURVATURE_GUESS / float(np.mean(var_u)), none_risk=none_risk,

@@ -36,6 +36,10 @@ def main(argv=None) -> int:
     p.add_argument("--seed", type=int, default=3)
     p.add_argument("--prior", choices=["score-matching", "tuned"], default="score-matching",
                    help="which shipped prior to fit the lines for")
+    p.add_argument("--spread-share", type=float, default=0.0,
+                   help="the walk's spread_share (the shipped lines were fitted with the plain "
+                        "walk, 0; the cleaner walks with mrfclean.grey.SPREAD_SHARE, about 10%% "
+                        "lower; the lines only set the walk's first point)")
     args = p.parse_args(argv)
     prior = GSMPrior.load(shipped=TUNED_PRIOR_FILE if args.prior == "tuned" else PRIOR_FILE)
     gen = np.random.default_rng(1)
@@ -46,7 +50,7 @@ def main(argv=None) -> int:
             st = grey_setup(y, noise="gaussian", strength=1.0, curvature=0.0, seed=1)
             u, var_u = st.observed(y)
             lam = choose_strength(u, var_u, prior, start=0.5, seed=1 ^ 0x3C3C3C3C,
-                                  tol=DEFAULT_TOL).strength
+                                  tol=DEFAULT_TOL, spread_share=args.spread_share).strength
             srel = st.term.sigma / st.span
             g = signal_roughness(u, var_u)
             rows.append((srel, g, lam))

@@ -391,14 +391,14 @@ def test_window_spread_is_the_monte_carlo_variance_of_the_mean():
     """The spread ``_sure_risk`` reports (what ``choose_strength``'s ``spread_share``
     subtracts) against the Monte-Carlo variance of the windows' mean measured over
     independent seeds.  With every chain started alike the chains are independent
-    replicates, so the squared standard error of their average, ``sum (m_c - m)^2 /
-    (C (C - 1))``, is unbiased for it (the sample variance of replicate means, any
-    statistics handbook).  200 seeds of 3 chains x (2 + 2) sweeps on a 32^2 camera crop
-    give the ratio a standard deviation of about 0.007 (bootstrap over seeds, measured);
-    5% is 7 of them.  A spread read from the sampled images instead of their conditional
-    means would be several times larger.  With a quadratic prior the conditional mean
-    does not depend on the scales (Rue & Held 2005, ch. 2): every chain's mean is the
-    posterior mean and the spread is only solver error."""
+    replicates, so ``sum (m_c - m)^2 / (C (C - 1))``, the squared standard error of
+    the mean of C independent replicates, is unbiased for it.  200 seeds of 3 chains x
+    (2 + 2) sweeps on a 32^2 camera crop give the ratio a standard deviation of about
+    0.007 (bootstrap over seeds, measured); 5% is 7 of them.  A divisor C^2 instead of
+    C (C - 1) reads 33% low.  The per-chain tallies, merged, must equal the one tally
+    of ``sampler.run`` over the same chains.  With a quadratic prior there is one scale:
+    the posterior is Gaussian and every chain's (Rao-Blackwellised) mean is the
+    posterior mean, so the spread is only solver error."""
     from skimage.transform import downscale_local_mean
 
     from mrfclean.fit.grey import _chain_tallies, _sure_risk
@@ -420,6 +420,16 @@ def test_window_spread_is_the_monte_carlo_variance_of_the_mean():
     assert spread * y.size == pytest.approx(spreads[7], rel=1e-9)
     assert risk == _sure_risk([(y, s * s, None, [y] * 3)], prior, seed=7, burn_in=2, samples=2,
                               chains=3, tol=1e-3)
+    m = GreyModel(y, variance=s * s, prior=prior, tol=1e-3, sample_tol=1e-3, starts=[y] * 3,
+                  single_solves=2)
+    ref = sampler.run(m, sweeps=4, burn_in=2, chains=3, seed=7, tally=True).tally
+    tallies = _chain_tallies(y, s * s, [y] * 3, prior, seed=7, burn_in=2, samples=2, tol=1e-3)
+    for t in tallies[1:]:
+        tallies[0].merge(t)
+    np.testing.assert_allclose(tallies[0].mean64(), ref.mean64(), rtol=1e-12, atol=1e-14)
+    np.testing.assert_allclose(tallies[0].var64(), ref.var64(), rtol=1e-9, atol=1e-14)
+    with pytest.raises(ValueError, match="samples"):
+        _chain_tallies(y, s * s, [y], prior, seed=7, burn_in=2, samples=0, tol=1e-3)
     quad = GSMPrior.quadratic(300.0, neighbourhood="4").with_strength(0.5)
     ms = np.array([t.mean64() for t in _chain_tallies(y, s * s, [y] * 3, quad, seed=1,
                                                        burn_in=2, samples=2, tol=1e-9)])

@@ -697,16 +697,19 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
         The chains mirror their scale draws (reflected through their CDF, see
         ``GreyModel``'s ``reflect_scales``) instead of drawing them afresh.
     spread_share : float
-        The walk minimises SURE less this multiple of the Monte-Carlo variance
-        of the windows' mean, read from the spread of the chains' own means.
-        That variance inflates the residual term of SURE, most at low
-        strengths; ``mrfclean.grey`` passes :data:`mrfclean.grey.SPREAD_SHARE`
-        (see there for what was measured).
+        The walk minimises SURE less this multiple of the spread of the
+        chains' means (``sum_c (m_c - m)^2 / (C (C - 1))`` per pixel: the
+        Monte-Carlo variance of the windows' mean, plus what is left of the
+        chains' different starts).  An empirical correction, not a bias
+        correction (at equilibrium plain SURE reads low by that variance);
+        ``mrfclean.grey`` passes :data:`mrfclean.grey.SPREAD_SHARE` (see there
+        for what was measured).
 
     Returns
     -------
     StrengthFit
-        The strength of least risk and every ``(strength, risk)`` tried.
+        The strength of least risk, every ``(strength, risk)`` tried (``table``,
+        what the walk minimised) and their plain SURE (``sure``).
     """
     if not (step > 1 and 0 < bounds[0] <= start <= bounds[1]):
         raise ValueError(f"need step > 1 and bounds[0] <= start <= bounds[1], got {step}, {bounds}, {start}")
@@ -754,11 +757,17 @@ def _sure_blocks(observed, variance, crop, crops, chains):
 
 
 def _chain_tallies(y, variance, starts, prior, *, seed, burn_in, samples, tol, reflect=False):
-    """One posterior tally per start: temperature-1 chains as :func:`mrfclean.sampler.run`
-    drives them (chain ``c`` from ``starts[c]``), each with a tally of its own."""
+    """One posterior tally per start, from chains driven as :func:`mrfclean.sampler.run` does.
+
+    Chain ``c`` starts from ``starts[c]``; its ``samples`` sweeps after
+    ``burn_in`` go into a tally of its own.
+    """
     from .. import sampler
     from ..models.grey import GreyModel
     from ..schedules import Constant
+
+    if samples < 1 or burn_in < 0:
+        raise ValueError(f"need samples >= 1 and burn_in >= 0, got {samples} and {burn_in}")
 
     # The draws solve to ``tol`` too, not to the final chains' looser 1e-2: conjugate
     # gradients from zero stop short of the draw's full spread, so a loose solve reads the
@@ -783,8 +792,12 @@ def _sure_risk(blocks, prior, *, seed, burn_in, samples, chains, tol, reflect=Fa
     """SURE per pixel of the posterior mean under ``prior``, over the windows ``blocks``.
 
     ``reflect``: the chains mirror their scale draws (``GreyModel``'s ``reflect_scales``).
-    ``spread``: also return the Monte-Carlo variance of the mean per pixel, from
-    the spread of the chains' own means (0 with one chain): ``(risk, spread)``.
+    ``spread``: also return the spread of the chains' own means per pixel,
+    ``sum_c (m_c - m)^2 / (C (C - 1))`` (0 with one chain): ``(risk, spread)``.
+    For chains from the same start it is the Monte-Carlo variance of their
+    pooled mean (the squared standard error of a mean of independent
+    replicates); from the windows' different starts it also holds what is
+    left of the starts after the burn-in.
     """
     tot, mc, n = 0.0, 0.0, 0
     for k, (yc, vc, _, starts) in enumerate(blocks):
@@ -798,7 +811,7 @@ def _sure_risk(blocks, prior, *, seed, burn_in, samples, chains, tol, reflect=Fa
             total.merge(t)
         mu = total.mean64()
         tot += sure(yc, mu, total.var64(), vc) * yc.size
-        if chains > 1:  # the squared standard error of a mean of independent replicates
+        if chains > 1:  # the squared standard error of a mean of C replicates
             mc += sum(float(np.sum((m_ - mu) ** 2)) for m_ in means) / (chains * (chains - 1))
         n += yc.size
     return (tot / n, mc / n) if spread else tot / n
@@ -876,7 +889,8 @@ def choose_curvature(observed, variance, prior: GSMPrior, *, start, step=4.0, sh
     variant risk tried at stop 11 an unbounded walk reached a 243rd of the
     strength on a training image, 4.9 dB worse).  The benchmark's choices lie
     within two steps.  Windows, chains and seeds are those of
-    :func:`choose_strength`, so the risks are comparable with its table.
+    :func:`choose_strength`, so the risks are comparable with the plain SURE
+    of its walk (``StrengthFit.sure``).
 
     On the smooth benchmark crops the risk's minimum sits 1-2 diagonal steps
     from the first point (cell at sigma 0.05: +0.7 to +0.9 dB over the first
@@ -895,8 +909,9 @@ def choose_curvature(observed, variance, prior: GSMPrior, *, start, step=4.0, sh
         ``prior.strength * strength_factor`` and only the weight is walked).
     none_risk : float, optional
         Risk without the term to compare with (``mrfclean.grey.grey_setup``
-        passes the least risk its strength walk found).  Default: computed
-        for ``prior`` as it is.
+        passes the least plain SURE its strength walk evaluated, at one of the
+        walk's grid strengths; the prior's strength is the walk's answer,
+        which may lie between them).  Default: computed for ``prior`` as it is.
     strength_factor : float
         The first point's strength is ``prior.strength * strength_factor``.
     crop, crops, burn_in, samples, chains, seed, tol, reflect
