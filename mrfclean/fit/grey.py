@@ -598,7 +598,7 @@ class StrengthFit:
     """Strength chosen by SURE and the ``[strength, risk]`` pairs tried.
 
     ``risk`` is what the walk minimised (SURE per pixel less ``spread_share``
-    times the mean's Monte-Carlo variance, see :func:`choose_strength`);
+    times the spread of the chains' means, see :func:`choose_strength`);
     ``sure`` holds the plain SURE of the same strengths, in the same order.
     """
 
