@@ -34,6 +34,13 @@ class Diagnostics:
         ``(final_energy - exact_energy) / |exact_energy|``.
     quench_passes : int
         Zero-temperature passes made after annealing.
+    mc_error : float
+        Greyscale posterior mean only: its Monte-Carlo standard error as a share
+        of the posterior standard deviation (root-mean-square of each over the
+        pixels), from the spread of the chains' own means (nan when not
+        estimated, e.g. with one chain).  It says how much of the mean is
+        sampling noise: more kept sweeps or chains shrink it as one over their
+        square root.
     notes : list of str
         Warnings and remarks in plain words.
     """
@@ -44,15 +51,16 @@ class Diagnostics:
     exact_energy: float | None = None
     energy_gap: float | None = None
     quench_passes: int = 0
+    mc_error: float = float("nan")
     notes: list = field(default_factory=list)
 
 
 def combine_diagnostics(parts, labels) -> Diagnostics:
     """One :class:`Diagnostics` for an image cleaned in parts (planes of a stack, tiles).
 
-    The worst R-hat, agreement only if every part agrees, final (and exact)
-    energies summed, the most quench passes, and each part's notes prefixed
-    with its label.
+    The worst R-hat and Monte-Carlo error, agreement only if every part
+    agrees, final (and exact) energies summed, the most quench passes, and
+    each part's notes prefixed with its label.
     """
     parts = list(parts)
     diag = Diagnostics()
@@ -62,6 +70,8 @@ def combine_diagnostics(parts, labels) -> Diagnostics:
     diag.chains_agree = all(agree) if agree else None
     diag.final_energy = float(sum(d.final_energy for d in parts))
     diag.quench_passes = int(max((d.quench_passes for d in parts), default=0))
+    mc = [d.mc_error for d in parts if np.isfinite(d.mc_error)]
+    diag.mc_error = float(max(mc)) if mc else float("nan")
     for label, d in zip(labels, parts):
         diag.notes.extend(f"{label}: {n}" for n in d.notes)
     if parts and all(d.exact_energy is not None for d in parts):
@@ -165,10 +175,10 @@ def sample_posterior(model, *, burn_in: int, samples: int, chains: int, seed: in
     return PosteriorRun(run.tally, r, run)
 
 
-def record_posterior(diag: Diagnostics, post: PosteriorRun) -> None:
-    """Copy a posterior run's R-hat verdict into ``diag``."""
+def record_posterior(diag: Diagnostics, post: PosteriorRun, detail: str = "") -> None:
+    """Copy a posterior run's R-hat verdict into ``diag`` (``detail`` ends its note)."""
     diag.rhat = post.rhat
     if np.isfinite(post.rhat):
         diag.chains_agree = bool(post.rhat <= RHAT_LIMIT)
         if not diag.chains_agree:
-            diag.notes.append(f"chains disagree: R-hat {post.rhat:.3f} > {RHAT_LIMIT}")
+            diag.notes.append(f"chains disagree: R-hat {post.rhat:.3f} > {RHAT_LIMIT}{detail}")

@@ -603,8 +603,13 @@ def sample_block(y, setup: GreySetup, *, method="mean", schedule=None, sweeps=No
         params.update(schedule.describe(), sweeps=sweeps)
     post = sample_posterior(model, burn_in=burn_in, samples=samples, chains=int(chains),
                             seed=seed ^ 0x5A5A5A5A, progress=progress)
-    record_posterior(diag, post)
     mean_u, std_u = post.tally.mean64(), np.sqrt(post.tally.var64())
+    mc_var = post.tally.mc_variance()
+    if mc_var is not None:
+        diag.mc_error = float(np.sqrt(mc_var / max(float(np.mean(std_u * std_u)), 1e-300)))
+    record_posterior(diag, post, detail="" if mc_var is None else (
+        f" (of the energy); the mean's Monte-Carlo error is {diag.mc_error:.2f} of its"
+        " posterior sd"))
     params.update(burn_in=burn_in, samples=samples)
     if method == "mean":
         est_u = mean_u

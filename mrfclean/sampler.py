@@ -93,6 +93,9 @@ class Tally:
         """Add the tally of another, independent run (the driver itself keeps one tally)."""
         raise NotImplementedError
 
+    def end_chain(self) -> None:
+        """Called by :func:`run` after each chain's last sweep (nothing by default)."""
+
     def mean(self) -> np.ndarray:  # pragma: no cover
         raise NotImplementedError
 
@@ -189,6 +192,8 @@ def run(model: ChainModel, *, schedule: Schedule | None = None, sweeps: int, cha
                         total.add(st.state)
                 last = st
                 bar.update(1)
+            if total is not None:
+                total.end_chain()
             state = last.state
             passes.append(model.quench(state) if quench else 0)
             finals.append(model.energy(state) if quench else last.energy)

@@ -312,3 +312,20 @@ def test_browser_check_catches_a_missing_image(tmp_path):
     state, failed, errors, requests, shot = _render(exe, page)
     assert state["images"] == [{"ok": False, "w": 0, "shown": state["images"][0]["shown"]}]
     assert len(failed) == 1
+
+
+def test_grey_card_shows_the_monte_carlo_error(tmp_path):
+    """A greyscale result's card names the posterior mean's Monte-Carlo error (the
+    ``mc_error`` its diagnostics carry, see ``estimates.Diagnostics``)."""
+    from skimage.data import camera
+
+    (tmp_path / "in").mkdir()
+    x = camera()[200:248, 200:248].astype(np.float64)
+    y = np.clip(x + 20 * np.random.default_rng(0).standard_normal(x.shape), 0, 255)
+    Image.fromarray(y.astype(np.uint8)).save(tmp_path / "in" / "g.png")
+    r = run_batch([tmp_path / "in"], tmp_path / "out", settings=Settings(),
+                  options=BatchOptions(workers=1, progress=False))
+    mc = r.entries[0]["diagnostics"]["mc_error"]
+    assert 0 < mc < 1
+    text = batch_report(tmp_path / "out").read_text()
+    assert "Monte-Carlo error / posterior sd" in text

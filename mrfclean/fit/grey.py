@@ -756,63 +756,34 @@ def _sure_blocks(observed, variance, crop, crops, chains):
             for yc, vc, sz in blocks]
 
 
-def _chain_tallies(y, variance, starts, prior, *, seed, burn_in, samples, tol, reflect=False):
-    """One posterior tally per start, from chains driven as :func:`mrfclean.sampler.run` does.
-
-    Chain ``c`` starts from ``starts[c]``; its ``samples`` sweeps after
-    ``burn_in`` go into a tally of its own.
-    """
-    from .. import sampler
-    from ..models.grey import GreyModel
-    from ..schedules import Constant
-
-    if samples < 1 or burn_in < 0:
-        raise ValueError(f"need samples >= 1 and burn_in >= 0, got {samples} and {burn_in}")
-
-    # The draws solve to ``tol`` too, not to the final chains' looser 1e-2: conjugate
-    # gradients from zero stop short of the draw's full spread, so a loose solve reads the
-    # posterior variance, hence the divergence, low, and most so for stiff priors.  On cell
-    # 256^2 at sigma 0.05 that bias ranked a weight-12800 curvature term first where it was
-    # 0.4 dB worse; at 3e-3 the ranking matched the windows' true errors (measured).
-    m = GreyModel(y, variance=variance, prior=prior, tol=tol, sample_tol=tol, starts=starts,
-                  single_solves=burn_in, reflect_scales=reflect)
-    tallies = []
-    with sampler.kernel_threads(m.grid.size):
-        for c in range(len(starts)):
-            tallies.append(m.tally())
-            for st in sampler.iterate(m, Constant(1.0), sweeps=burn_in + samples, chain=c,
-                                      seed=seed, burn_in=burn_in):
-                if st.sampling:
-                    tallies[-1].add(st.state)
-    return tallies
-
-
 def _sure_risk(blocks, prior, *, seed, burn_in, samples, chains, tol, reflect=False,
                spread=False):
     """SURE per pixel of the posterior mean under ``prior``, over the windows ``blocks``.
 
     ``reflect``: the chains mirror their scale draws (``GreyModel``'s ``reflect_scales``).
     ``spread``: also return the spread of the chains' own means per pixel,
-    ``sum_c (m_c - m)^2 / (C (C - 1))`` (0 with one chain): ``(risk, spread)``.
-    For chains from the same start it is the Monte-Carlo variance of their
-    pooled mean (the squared standard error of a mean of independent
-    replicates); from the windows' different starts it also holds what is
-    left of the starts after the burn-in.
+    ``sum_c (m_c - m)^2 / (C (C - 1))`` (0 with one chain): ``(risk, spread)``
+    (see ``GreyTally.mc_variance``; from the windows' different starts it also
+    holds what is left of the starts after the burn-in).
     """
+    from .. import sampler
+    from ..models.grey import GreyModel
+
     tot, mc, n = 0.0, 0.0, 0
     for k, (yc, vc, _, starts) in enumerate(blocks):
         if len(starts) < chains:
             raise ValueError(f"windows made for {len(starts)} chains, asked for {chains}")
-        tallies = _chain_tallies(yc, vc, starts[:chains], prior, seed=seed + k,
-                                 burn_in=burn_in, samples=samples, tol=tol, reflect=reflect)
-        means = [t.mean64() for t in tallies]
-        total = tallies[0]
-        for t in tallies[1:]:
-            total.merge(t)
-        mu = total.mean64()
-        tot += sure(yc, mu, total.var64(), vc) * yc.size
-        if chains > 1:  # the squared standard error of a mean of C replicates
-            mc += sum(float(np.sum((m_ - mu) ** 2)) for m_ in means) / (chains * (chains - 1))
+        # The draws solve to ``tol`` too, not to the final chains' looser 1e-2: conjugate
+        # gradients from zero stop short of the draw's full spread, so a loose solve reads the
+        # posterior variance, hence the divergence, low, and most so for stiff priors.  On cell
+        # 256^2 at sigma 0.05 that bias ranked a weight-12800 curvature term first where it was
+        # 0.4 dB worse; at 3e-3 the ranking matched the windows' true errors (measured).
+        m = GreyModel(yc, variance=vc, prior=prior, tol=tol, sample_tol=tol,
+                      starts=starts[:chains], single_solves=burn_in, reflect_scales=reflect)
+        run = sampler.run(m, sweeps=burn_in + samples, burn_in=burn_in, chains=chains,
+                          seed=seed + k, tally=True)
+        tot += sure(yc, run.tally.mean64(), run.tally.var64(), vc) * yc.size
+        mc += (run.tally.mc_variance() or 0.0) * yc.size
         n += yc.size
     return (tot / n, mc / n) if spread else tot / n
 

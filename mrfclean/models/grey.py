@@ -382,6 +382,10 @@ class GreyTally(Tally):
         self.s2 = np.zeros(shape)
         self.sv = np.zeros(shape)
         self.n = 0
+        self._prev = None  # s1 at the end of the previous chain
+        self._n_prev = 0
+        self._sq = 0.0  # sum over chains and pixels of the chain's own mean squared
+        self._counts = []  # kept sweeps of each chain; None once merged
 
     def add(self, state):
         kernels.tally_moments(self.s1, self.s2, self.sv, state.mu, state.x)
@@ -392,6 +396,38 @@ class GreyTally(Tally):
         self.s2 += other.s2
         self.sv += other.sv
         self.n += other.n
+        self._counts = None  # the chains of a merged tally are not told apart
+
+    def end_chain(self):
+        if self._counts is None or self.n == self._n_prev:
+            return
+        n = self.n - self._n_prev
+        own = self.s1 / n if self._prev is None else (self.s1 - self._prev) / n
+        self._sq += float(np.sum(own * own))
+        self._counts.append(n)
+        if self._prev is None:
+            self._prev = self.s1.copy()
+        else:
+            self._prev[...] = self.s1
+        self._n_prev = self.n
+
+    def mc_variance(self):
+        r"""Monte-Carlo variance of the pooled mean, per pixel (averaged over pixels).
+
+        From the chains' own means :math:`m_c`:
+        :math:`\sum_c (m_c - \bar m)^2 / (C (C - 1))`, the squared standard error
+        of a mean of :math:`C` independent replicates, summed in the form
+        :math:`\sum_c m_c^2 - C \bar m^2` so that no chain's mean is kept.
+        Chains from different starts add what is left of the starts.  None with
+        fewer than two chains, chains of unequal length, or a merged tally.
+        """
+        counts = self._counts
+        if not counts or len(counts) < 2 or len(set(counts)) != 1 or sum(counts) != self.n:
+            return None
+        C = len(counts)
+        m = self.mean64()
+        spread = max(self._sq - C * float(np.sum(m * m)), 0.0)
+        return spread / (C * (C - 1)) / m.size
 
     def mean64(self):
         return self.s1 / max(self.n, 1)
