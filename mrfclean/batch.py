@@ -27,6 +27,7 @@ import functools
 import glob
 import hashlib
 import io as _io
+import math
 import os
 import socket
 import time
@@ -755,6 +756,9 @@ def _describe(entry, outroot) -> str:
     rhat = d.get("rhat")
     if isinstance(rhat, float):
         bits.append(f"R-hat {rhat:.3f}")
+    mc = d.get("mc_error")
+    if isinstance(mc, float) and math.isfinite(mc):
+        bits.append(f"Monte-Carlo error {mc:.2f} sd")
     for name, value in (entry.get("metrics") or {}).items():
         if isinstance(value, float):
             bits.append(f"{name} {value:.4g}")
@@ -768,7 +772,8 @@ def _describe(entry, outroot) -> str:
 # CSV summary
 # ---------------------------------------------------------------------------
 SUMMARY_COLUMNS = ("relpath", "status", "kind", "method", "coupling", "flip_rate", "sigma",
-                   "strength", "curvature", "rhat", "chains_agree", "final_energy", "psnr", "ssim",
+                   "strength", "curvature", "rhat", "chains_agree", "mc_error", "final_energy",
+                   "psnr", "ssim",
                    "error_rate", "dice", "iou", "seconds", "output", "error")
 
 
@@ -784,7 +789,7 @@ def summary_rows(entries) -> list[dict]:
         for k in ("coupling", "flip_rate", "sigma", "strength", "curvature"):
             v = p.get(k)
             row[k] = v if isinstance(v, (int, float)) else None
-        for k in ("rhat", "chains_agree", "final_energy"):
+        for k in ("rhat", "chains_agree", "mc_error", "final_energy"):
             row[k] = d.get(k)
         for k in ("psnr", "ssim", "error_rate", "dice", "iou"):
             row[k] = m.get(k)

@@ -11,6 +11,7 @@ needed.  The test is skipped only when no Chromium is installed; CI installs it.
 from __future__ import annotations
 
 import base64
+import csv
 import fcntl
 import io as _io
 import json
@@ -315,7 +316,8 @@ def test_browser_check_catches_a_missing_image(tmp_path):
 
 
 def test_grey_card_shows_the_monte_carlo_error(tmp_path):
-    """A greyscale result's card names the posterior mean's Monte-Carlo error (the
+    """A greyscale result's card and the batch summary name the posterior mean's
+    Monte-Carlo error (the
     ``mc_error`` its diagnostics carry, see ``estimates.Diagnostics``)."""
     from skimage.data import camera
 
@@ -327,5 +329,7 @@ def test_grey_card_shows_the_monte_carlo_error(tmp_path):
                   options=BatchOptions(workers=1, progress=False))
     mc = r.entries[0]["diagnostics"]["mc_error"]
     assert 0 < mc < 1
+    with open(tmp_path / "out" / "summary.csv") as fh:  # the batch summary carries it too
+        assert float(next(csv.DictReader(fh))["mc_error"]) == pytest.approx(mc)
     text = batch_report(tmp_path / "out").read_text()
     assert "Monte-Carlo error / posterior sd" in text
