@@ -317,8 +317,8 @@ def test_browser_check_catches_a_missing_image(tmp_path):
 
 def test_grey_card_shows_the_monte_carlo_error(tmp_path):
     """A greyscale result's card and the batch summary name the posterior mean's
-    Monte-Carlo error (the
-    ``mc_error`` its diagnostics carry, see ``estimates.Diagnostics``)."""
+    Monte-Carlo error (the ``mc_error`` its diagnostics carry, see
+    ``estimates.Diagnostics``)."""
     from skimage.data import camera
 
     (tmp_path / "in").mkdir()
