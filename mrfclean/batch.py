@@ -758,7 +758,7 @@ def _describe(entry, outroot) -> str:
         bits.append(f"R-hat {rhat:.3f}")
     mc = d.get("mc_error")
     if isinstance(mc, float) and math.isfinite(mc):
-        bits.append(f"Monte-Carlo error {mc:.2f} sd")
+        bits.append(f"Monte-Carlo error {mc:.2f} of posterior sd")
     for name, value in (entry.get("metrics") or {}).items():
         if isinstance(value, float):
             bits.append(f"{name} {value:.4g}")
@@ -772,9 +772,8 @@ def _describe(entry, outroot) -> str:
 # CSV summary
 # ---------------------------------------------------------------------------
 SUMMARY_COLUMNS = ("relpath", "status", "kind", "method", "coupling", "flip_rate", "sigma",
-                   "strength", "curvature", "rhat", "chains_agree", "mc_error", "final_energy",
-                   "psnr", "ssim",
-                   "error_rate", "dice", "iou", "seconds", "output", "error")
+                   "strength", "curvature", "rhat", "chains_agree", "final_energy", "psnr", "ssim",
+                   "error_rate", "dice", "iou", "seconds", "output", "error", "mc_error")
 
 
 def summary_rows(entries) -> list[dict]:
@@ -789,8 +788,10 @@ def summary_rows(entries) -> list[dict]:
         for k in ("coupling", "flip_rate", "sigma", "strength", "curvature"):
             v = p.get(k)
             row[k] = v if isinstance(v, (int, float)) else None
-        for k in ("rhat", "chains_agree", "mc_error", "final_energy"):
+        for k in ("rhat", "chains_agree", "final_energy"):
             row[k] = d.get(k)
+        mc = d.get("mc_error")  # greyscale means only: blank where not estimated
+        row["mc_error"] = mc if isinstance(mc, float) and math.isfinite(mc) else None
         for k in ("psnr", "ssim", "error_rate", "dice", "iou"):
             row[k] = m.get(k)
         rows.append(row)

@@ -35,12 +35,14 @@ class Diagnostics:
     quench_passes : int
         Zero-temperature passes made after annealing.
     mc_error : float
-        Greyscale posterior mean only: its Monte-Carlo standard error as a share
-        of the posterior standard deviation (root-mean-square of each over the
-        pixels), from the spread of the chains' own means (nan when not
-        estimated, e.g. with one chain).  It says how much of the mean is
-        sampling noise: more kept sweeps or chains shrink it as one over their
-        square root.
+        Greyscale only: the Monte-Carlo standard error of the temperature-1
+        chains' mean (the ``mean`` and ``std`` maps, also with ``method="map"``)
+        as a share of the posterior standard deviation (root-mean-square of
+        each over the pixels), from the spread of the chains' own means; nan
+        when not estimated (binary, or one chain).  For an image cleaned in
+        parts (tiles, planes) the worst part's.  It measures the sampling noise
+        that differs between chains, not a bias they share; more kept sweeps
+        or chains shrink it roughly as one over their square root.
     notes : list of str
         Warnings and remarks in plain words.
     """

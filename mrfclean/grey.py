@@ -608,8 +608,8 @@ def sample_block(y, setup: GreySetup, *, method="mean", schedule=None, sweeps=No
     if mc_var is not None:
         diag.mc_error = float(np.sqrt(mc_var / max(float(np.mean(std_u * std_u)), 1e-300)))
     record_posterior(diag, post, detail="" if mc_var is None else (
-        f" (of the energy); the mean's Monte-Carlo error is {diag.mc_error:.2f} of its"
-        " posterior sd"))
+        f"; that R-hat is of the energy, and the mean's Monte-Carlo error is"
+        f" {diag.mc_error:.2f} of its posterior sd"))
     params.update(burn_in=burn_in, samples=samples)
     if method == "mean":
         est_u = mean_u

@@ -84,7 +84,7 @@ def sweep_task(task: SweepTask) -> dict:
                 "seconds": time.perf_counter() - t0}
     d = result.diagnostics
     row.update({"status": "done", **metrics, "rhat": d.rhat, "chains_agree": d.chains_agree,
-                "final_energy": d.final_energy})
+                "final_energy": d.final_energy, "mc_error": d.mc_error})
     for k in ("coupling", "flip_rate", "sigma", "strength", "curvature"):
         v = result.params.get(k)
         if isinstance(v, (int, float)) and k not in task.overrides:
@@ -101,7 +101,8 @@ class SweepTable:
     ----------
     rows : list of dict
         ``setting`` (index), the swept parameters, ``image``, ``status``,
-        the metrics, ``rhat``, ``chains_agree``, ``final_energy``, the values
+        the metrics, ``rhat``, ``chains_agree``, ``final_energy``, ``mc_error``
+        (greyscale; see :class:`mrfclean.estimates.Diagnostics`), the values
         used for estimated parameters (``used_coupling`` ...), ``seconds``.
     settings : list of dict
         The overrides of each setting, by index.
@@ -126,7 +127,7 @@ class SweepTable:
             rows = [r for r in self.rows if r["setting"] == i]
             done = [r for r in rows if r.get("status") == "done"]
             m = {"setting": i, **overrides, "images": len(done), "failed": len(rows) - len(done)}
-            for k in self.metrics + ["rhat", "seconds"]:
+            for k in self.metrics + ["rhat", "mc_error", "seconds"]:
                 vals = [r[k] for r in done if isinstance(r.get(k), float) and math.isfinite(r[k])]
                 m[k] = float(np.mean(vals)) if vals else None
             m["chains_agree"] = all(r.get("chains_agree") is not False for r in done) if done else None

@@ -434,9 +434,14 @@ def test_tally_spread_is_the_monte_carlo_variance_of_the_mean():
     assert spread == pytest.approx(direct, rel=1e-9)
     assert risk == _sure_risk([(y, s * s, None, [y] * 3)], prior, seed=7, burn_in=2, samples=2,
                               chains=3, tol=1e-3)
-    merged = sampler.run(m, sweeps=4, burn_in=2, chains=1, seed=1, tally=True).tally
-    merged.merge(sampler.run(m, sweeps=4, burn_in=2, chains=1, seed=2, tally=True).tally)
-    assert merged.mc_variance() is None  # chains of a merged tally are not told apart
+    merged = m.tally()  # chains of a merged tally are not told apart, even if more follow
+    merged.merge(sampler.run(m, sweeps=4, burn_in=2, chains=2, seed=1, tally=True).tally)
+    for c in range(2):
+        for st in sampler.iterate(m, Constant(1.0), sweeps=4, chain=c, seed=2, burn_in=2):
+            if st.sampling:
+                merged.add(st.state)
+        merged.end_chain()
+    assert merged.mc_variance() is None
     quad = model(GSMPrior.quadratic(300.0, neighbourhood="4").with_strength(0.5), 1e-9)
     t = sampler.run(quad, sweeps=4, burn_in=2, chains=3, seed=1, tally=True).tally
     assert t.mc_variance() < 1e-9 * np.mean(spreads)
@@ -460,6 +465,21 @@ def test_reported_monte_carlo_error_matches_the_spread_of_independent_runs():
         var.append(np.mean(res.std.astype(np.float64) ** 2))
     empirical = np.mean(np.var(means, axis=0, ddof=1)) / np.mean(var)
     assert np.mean(reported) == pytest.approx(empirical, rel=0.08)
+
+
+def test_parts_carry_the_worst_monte_carlo_error_and_binary_none():
+    """Tiles and stack planes report the worst part's Monte-Carlo error (nan parts
+    skipped, all nan stays nan); a binary result does not estimate one."""
+    from mrfclean.binary import clean_binary
+    from mrfclean.estimates import Diagnostics, combine_diagnostics
+
+    parts = [Diagnostics(mc_error=0.2), Diagnostics(), Diagnostics(mc_error=0.3)]
+    assert combine_diagnostics(parts, "abc").mc_error == 0.3
+    assert math.isnan(combine_diagnostics([Diagnostics(), Diagnostics()], "ab").mc_error)
+    spins = np.zeros((32, 32), bool)
+    spins[:, 16:] = True
+    spins ^= np.random.default_rng(0).random(spins.shape) < 0.1
+    assert math.isnan(clean_binary(spins, rng=0).diagnostics.mc_error)
 
 
 def exact_quadratic_mse(x, y, s):
