@@ -756,8 +756,8 @@ def _describe(entry, outroot) -> str:
     rhat = d.get("rhat")
     if isinstance(rhat, float):
         bits.append(f"R-hat {rhat:.3f}")
-    mc = d.get("mc_error")
-    if isinstance(mc, float) and math.isfinite(mc):
+    mc = mc_error_of(d)
+    if mc is not None:
         bits.append(f"Monte-Carlo error {mc:.2f} of posterior sd")
     for name, value in (entry.get("metrics") or {}).items():
         if isinstance(value, float):
@@ -771,6 +771,13 @@ def _describe(entry, outroot) -> str:
 # ---------------------------------------------------------------------------
 # CSV summary
 # ---------------------------------------------------------------------------
+def mc_error_of(diagnostics: dict) -> float | None:
+    """A manifest entry's ``mc_error`` (greyscale means only), or None where it was not
+    estimated (nan, stored as the string "nan", or absent in older entries)."""
+    mc = diagnostics.get("mc_error")
+    return mc if isinstance(mc, float) and math.isfinite(mc) else None
+
+
 SUMMARY_COLUMNS = ("relpath", "status", "kind", "method", "coupling", "flip_rate", "sigma",
                    "strength", "curvature", "rhat", "chains_agree", "final_energy", "psnr", "ssim",
                    "error_rate", "dice", "iou", "seconds", "output", "error", "mc_error")
@@ -790,8 +797,7 @@ def summary_rows(entries) -> list[dict]:
             row[k] = v if isinstance(v, (int, float)) else None
         for k in ("rhat", "chains_agree", "final_energy"):
             row[k] = d.get(k)
-        mc = d.get("mc_error")  # greyscale means only: blank where not estimated
-        row["mc_error"] = mc if isinstance(mc, float) and math.isfinite(mc) else None
+        row["mc_error"] = mc_error_of(d)
         for k in ("psnr", "ssim", "error_rate", "dice", "iou"):
             row[k] = m.get(k)
         rows.append(row)

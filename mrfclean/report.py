@@ -257,15 +257,16 @@ def _image_card(entry, outdir: Path) -> str:
             facts[k] = p[k]
     facts.update({"R-hat": d.get("rhat"), "final energy": d.get("final_energy"),
                   "seconds": entry.get("seconds")})
-    if isinstance(d.get("mc_error"), float) and math.isfinite(d["mc_error"]):
-        facts["Monte-Carlo error / posterior sd"] = d["mc_error"]
+    from .batch import mc_error_of
+
+    mc = mc_error_of(d)
+    if mc is not None:
+        facts["Monte-Carlo error / posterior sd"] = mc
     facts.update(m)
     warn = ""
     if _chains_disagree(entry):
-        mc = d.get("mc_error")
         also = (f" The mean's Monte-Carlo error is {_fmt(mc)} of its posterior sd;"
-                " more kept sweeps shrink it." if isinstance(mc, float) and math.isfinite(mc)
-                else "")
+                " more kept sweeps shrink it." if mc is not None else "")
         warn += (f'<div class="warn">Chains disagree (R-hat {_fmt(d.get("rhat"))}): '
                  f"run longer or check the parameters before trusting this result.{also}</div>")
     for note in d.get("notes") or []:
