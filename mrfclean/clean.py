@@ -18,6 +18,7 @@ from . import io
 from . import levels as lv
 from .binary import clean_binary
 from .estimates import CleanResult
+from .grey import PRIORS
 from .schedules import make_schedule
 from .stacks import STACK_MODES
 from .tiles import MIN_TILE
@@ -56,6 +57,8 @@ class Settings:
     curvature : float or "auto"
         Grey: weight of the second-difference (smooth-ramp) term; ``"auto"``:
         chosen by SURE, 0 when it does not help.
+    prior : {"auto", "smooth", "textured"}
+        Grey: which shipped prior (see :func:`mrfclean.grey.clean_grey`).
     schedule, t_start, t_end
         Annealing schedule for MAP.
     sweeps, burn_in, samples, chains : int or None
@@ -90,6 +93,7 @@ class Settings:
     read_variance: object = "auto"
     strength: object = "auto"
     curvature: object = "auto"
+    prior: str = "auto"
     schedule: str = "geometric"
     t_start: float = 3.0
     t_end: float = 0.05
@@ -114,6 +118,8 @@ class Settings:
             raise ValueError(f"method must be one of {METHODS}, got {self.method!r}")
         if self.noise not in NOISES:
             raise ValueError(f"noise must be one of {NOISES}, got {self.noise!r}")
+        if self.prior not in PRIORS:
+            raise ValueError(f"prior must be one of {PRIORS}, got {self.prior!r}")
 
     def replace(self, **changes) -> "Settings":
         return dataclasses.replace(self, **changes)
@@ -194,7 +200,8 @@ def clean(image, *, settings: Settings | None = None, rng=None, progress=False,
     return clean_grey(
         image, method=method, noise=s.noise,
         sigma=s.sigma, gain=s.gain, read_variance=s.read_variance, strength=s.strength,
-        curvature=s.curvature, schedule=make_schedule(s.schedule, start=s.t_start, end=s.t_end), sweeps=s.sweeps,
+        curvature=s.curvature, prior=s.prior,
+        schedule=make_schedule(s.schedule, start=s.t_start, end=s.t_end), sweeps=s.sweeps,
         burn_in=s.burn_in, samples=s.samples, chains=s.chains, rng=rng, progress=progress)
 
 

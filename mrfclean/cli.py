@@ -15,7 +15,7 @@ import signal
 import sys
 
 from . import __version__, io
-from .clean import KINDS, METHODS
+from .clean import KINDS, METHODS, PRIORS
 from .schedules import SCHEDULES
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130
@@ -130,6 +130,10 @@ def add_model_options(p):
     m.add_argument("--curvature", type=_auto_or_float,
                    help="grey: weight of the smooth-ramp (second-difference) term "
                         "(default: chosen by SURE, 0 when it does not help)")
+    m.add_argument("--prior", choices=PRIORS,
+                   help="grey: smooth (flat or slowly varying regions between edges: cells, "
+                        "phantoms; SURE may add the smooth-ramp term) or textured (fine texture "
+                        "everywhere) (default auto: chosen from the image's roughness)")
     m.add_argument("--boundary", choices=("free", "periodic"), help="lattice boundary (default free)")
     m.add_argument("--stack", choices=("volume", "planes"),
                    help="a stack of planes is one 3-D volume, z coupling from the voxel size "

@@ -32,7 +32,7 @@ except ModuleNotFoundError:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
 from .batch import BatchOptions
-from .clean import KINDS, METHODS, Settings
+from .clean import KINDS, METHODS, PRIORS, Settings
 from .schedules import SCHEDULES
 
 
@@ -114,7 +114,7 @@ SETTINGS_CHECKS = {
     "noise": _choice(("auto", "flip", "gaussian", "poisson-gaussian")),
     "coupling": _number_or_auto, "coupling_z": _number_or_auto, "flip_rate": _number_or_auto,
     "levels": _levels, "sigma": _number_or_auto, "strength": _number_or_auto,
-    "curvature": _number_or_auto,
+    "curvature": _number_or_auto, "prior": _choice(PRIORS),
     "schedule": _choice(sorted(SCHEDULES)), "t_start": _number, "t_end": _number,
     "sweeps": _optional(_int(1)), "burn_in": _optional(_int(0)), "samples": _optional(_int(1)),
     "chains": _int(1), "boundary": _choice(("free", "periodic")),

@@ -25,6 +25,11 @@ from .schedules import Geometric, Schedule
 
 METHODS = ("mean", "map")
 NOISES = ("auto", "gaussian", "poisson-gaussian")
+#: Names of the shipped priors: ``"smooth"`` (score matching, :data:`mrfclean.models.grey.PRIOR_FILE`;
+#: SURE may add the curvature term) and ``"textured"`` (tuned for PSNR on the training
+#: images, :data:`mrfclean.models.grey.TUNED_PRIOR_FILE`); ``"auto"`` picks one from the
+#: image's roughness (see :func:`grey_setup`).
+PRIORS = ("auto", "smooth", "textured")
 
 #: Defaults chosen with scripts/bench_grey.py (see README, "Benchmarks").  Chain
 #: length per chain, burn-in + kept (scripts/chain_lengths.py, twelve 512^2
@@ -287,15 +292,29 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
         :func:`mrfclean.fit.grey.choose_curvature`).
         It helps on smooth specimens (fluorescence-like, few sharp edges) and
         is left out (0) on textured ones.
-    prior : GSMPrior or path, optional
-        Default: one of the two priors shipped in ``mrfclean/data``.  With
-        strength and curvature on "auto", an image no smoother than the
-        training images (its roughness predicts a strength below the
-        curvature gate) gets ``grey_prior_tuned.json``, whose weights were
-        tuned for this cleaner's PSNR on noisy training images (logged as
-        ``prior`` in ``estimated``); a smoother image, or any strength or
-        curvature set by hand, gets the score-matching ``grey_prior.json``,
-        with which SURE can judge the curvature term.
+    prior : {"auto", "smooth", "textured"}, GSMPrior or path, optional
+        Which pixel-coupling prior (None is ``"auto"``; a path names a prior
+        file written by ``scripts/learn_grey_prior.py``).  The two shipped in
+        ``mrfclean/data``:
+
+        * ``"smooth"``: ``grey_prior.json``, learned by score matching on the
+          training images.  For regions of flat or slowly varying intensity
+          between edges (cells, phantoms, fundus images); with curvature on
+          "auto", SURE tries the second-difference term beside it.
+        * ``"textured"``: ``grey_prior_tuned.json``, the same prior with its
+          weights tuned for this cleaner's PSNR on noisy training images.  For
+          fine texture everywhere; the curvature term is not tried with it
+          (SURE cannot judge it there).
+
+        ``"auto"``, with strength and curvature on "auto" too, picks
+        ``"textured"`` for an image no smoother than the training images (its
+        roughness predicts a strength below the curvature gate) and
+        ``"smooth"`` for a smoother one, logging ``prior`` in ``estimated``;
+        with a strength or curvature set by hand it is ``"smooth"``.  The rule
+        can pick wrong: on the Shepp-Logan phantom (flat regions, sharp edges)
+        it picks ``"textured"``, 2.1-2.4 dB below ``"smooth"`` at sigma 0.05
+        and 0.1 of the range (``scripts/heldout_grey.py``).  ``prior_family``
+        in the parameters says which was used (``"given"`` for another prior).
     schedule : Schedule, optional
         Annealing schedule for ``"map"``; default geometric 1.0 → 0.01.
     sweeps : int, optional
@@ -390,6 +409,7 @@ class GreySetup:
     curvature_table: list | None = None
     sure_strength: float | None = None
     sure_walk: list | None = None
+    family: str = "given"  # "smooth" or "textured" (a shipped prior) or "given"
 
     def observed(self, y, smooth=None):
         """``(u, var_u)``: a block of physical intensities in the prior's units and its noise
@@ -399,7 +419,8 @@ class GreySetup:
 
     def describe(self):
         """JSON-ready parameters: noise, prior, intensity frame, what was estimated and how."""
-        d = {**self.term.describe(), **self.prior.describe(), "intensity_low": self.low,
+        d = {**self.term.describe(), **self.prior.describe(), "prior_family": self.family,
+             "intensity_low": self.low,
              "intensity_span": self.span, "estimated": list(self.estimated)}
         if self.sure_table is not None:
             d["sure"] = self.sure_table
@@ -480,23 +501,28 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     setup = GreySetup(term, low, span, None, estimated, None, noise_curve)  # prior: below
     u, var_u = setup.observed(y, pilot)
     noise_sd = float(np.sqrt(np.mean(var_u)))
-    roughness = signal_roughness(u, var_u) if prior is None and strength == "auto" else None
-    # With strength and curvature on "auto" and no prior given, an image no smoother
-    # than the training images gets the prior tuned for denoising on them; a smoother
-    # one keeps the score-matching prior, with which SURE can judge the curvature term
-    # (with the tuned one it cannot; measured at stop 15, see TUNED_STRENGTH_START and
-    # DEVELOPERS.md).  Smoother: the strength the image's roughness predicts for the
-    # score-matching prior is above the gate.
-    tuned = (prior is None and strength == "auto" and curvature == "auto"
-             and strength_start(noise_sd, roughness) < CURVATURE_GATE * strength_guess(noise_sd))
-    if prior is None:
+    choice = "auto" if prior is None else prior if isinstance(prior, str) and prior in PRIORS else None
+    roughness = signal_roughness(u, var_u) if choice and strength == "auto" else None
+    # With strength and curvature on "auto" and no prior named, an image no smoother
+    # than the training images gets the prior tuned for denoising on them ("textured");
+    # a smoother one keeps the score-matching prior ("smooth"), with which SURE can judge
+    # the curvature term (with the tuned one it cannot; measured at stop 15, see
+    # TUNED_STRENGTH_START and DEVELOPERS.md).  Smoother: the strength the image's
+    # roughness predicts for the score-matching prior is above the gate.
+    if choice == "auto":
+        auto = strength == "auto" and curvature == "auto"
+        choice = ("textured" if auto and strength_start(noise_sd, roughness)
+                  < CURVATURE_GATE * strength_guess(noise_sd) else "smooth")
+        if auto:
+            estimated.append("prior")
+    tuned = choice == "textured"
+    if choice:
         base = GSMPrior.load(shipped=TUNED_PRIOR_FILE if tuned else PRIOR_FILE)
     elif isinstance(prior, GSMPrior):
         base = prior
     else:
         base = GSMPrior.load(prior)
-    if tuned:
-        estimated.append("prior")
+    setup.family = choice or "given"
     # Under signal-dependent noise the prior acts on the noise-stabilised image (see
     # GSMPrior.noise_ref): over 18 Poisson-Gaussian draws on the benchmark's images
     # +0.34 dB on average (cell 512^2 +1.1 to +1.2, where SURE now takes the curvature
@@ -509,10 +535,9 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     # a curvature carried by a given prior counts as given unless "auto" asks for SURE
     base = base.with_curvature(0.0 if curvature == "auto"
                                else _number("curvature", curvature, positive=False))
-    gated = False
     if strength == "auto":
         # the guesses were fitted for the shipped priors; another prior starts at 0.5
-        start = (0.5 if prior is not None else
+        start = (0.5 if not choice else
                  strength_start(noise_sd, roughness, TUNED_STRENGTH_START if tuned else STRENGTH_START))
         fit = choose_strength(u, var_u, base, start=start, seed=sseed, tol=tol,
                               reflect=SURE_REFLECT, spread_share=SPREAD_SHARE)
@@ -521,11 +546,12 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         setup.sure_walk = fit.table
         setup.sure_strength = lam
         estimated.append("strength")
-        gated = tuned or (prior is None and lam < CURVATURE_GATE * strength_guess(noise_sd))
     else:
         lam = _number("strength", strength, positive=False)
+    gated = tuned or (strength == "auto" and choice is not None
+                      and lam < CURVATURE_GATE * strength_guess(noise_sd))
     if curvature == "auto" and gated:
-        setup.curvature_table = []  # not tried: the image is no smoother than usual
+        setup.curvature_table = []  # not tried: textured prior, or no smoother than usual
         estimated.append("curvature")
     elif curvature == "auto":
         # the least plain SURE the walk found for the prior alone (the parabola's vertex

@@ -89,6 +89,8 @@ def sweep_task(task: SweepTask) -> dict:
         v = result.params.get(k)
         if isinstance(v, (int, float)) and k not in task.overrides:
             row[f"used_{k}"] = float(v)
+    if "prior_family" in result.params and "prior" not in task.overrides:
+        row["used_prior"] = result.params["prior_family"]
     row["seconds"] = time.perf_counter() - t0
     return jsonable(row)
 

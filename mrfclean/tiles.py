@@ -851,7 +851,8 @@ def clean_tiled(image, *, settings, voxel_size=None, rng=None, progress=False, o
         return clean_grey_tiled(
             image, tile=s.tile, method="mean" if s.method in ("auto", "mpm") else s.method,
             noise=s.noise, sigma=s.sigma, gain=s.gain, read_variance=s.read_variance,
-            strength=s.strength, curvature=s.curvature, schedule=make_schedule(s.schedule, start=s.t_start, end=s.t_end),
+            strength=s.strength, curvature=s.curvature, prior=s.prior,
+            schedule=make_schedule(s.schedule, start=s.t_start, end=s.t_end),
             sweeps=s.sweeps, burn_in=s.burn_in, samples=s.samples, chains=s.chains, out=out,
             maps=maps, executor=executor, rng=rng, progress=progress)
     if s.boundary != "free":

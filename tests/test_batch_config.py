@@ -50,6 +50,7 @@ def test_file_values_flags_override_and_sources(tmp_path):
     ("[batch]\nrecursive = \"yes\"\n", "true or false"),
     ("[setting]\ncoupling = 1\n", "unknown table"),
     ('[settings]\nkind = "colour"\n', "kind"),
+    ('[settings]\nprior = "flat"\n', "auto, smooth, textured"),
 ])
 def test_bad_values_name_the_key(tmp_path, text, words):
     cfg = tmp_path / "c.toml"

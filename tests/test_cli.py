@@ -69,6 +69,22 @@ def test_same_seed_same_bytes(noisy_png, tmp_path):
     assert np.array_equal(a, b)
 
 
+@pytest.mark.parametrize("prior", ["smooth", "textured"])
+def test_prior_flag_reaches_the_grey_cleaner_and_is_logged(tmp_path, prior):
+    """``--prior`` picks the shipped grey prior; the manifest's parameters say which."""
+    from mrfclean.manifest import read_manifest
+
+    x = (np.random.default_rng(0).random((40, 40)) * 200).astype(np.uint8)
+    (tmp_path / "in").mkdir()
+    Image.fromarray(x).save(tmp_path / "in" / "g.png")
+    rc = main(["clean", str(tmp_path / "in" / "g.png"), "-o", str(tmp_path / "out"),
+               "--prior", prior, "--samples", "2"])
+    assert rc == 0
+    done = [e for e in read_manifest(tmp_path / "out" / "manifest.jsonl") if "params" in e]
+    assert [e["params"]["prior_family"] for e in done] == [prior]
+    assert done[0]["settings"]["prior"] == prior
+
+
 def test_refuses_to_overwrite_input(noisy_png, capsys):
     before = noisy_png.read_bytes()
     rc = main(["clean", str(noisy_png), "-o", str(noisy_png.parent), *FAST])
