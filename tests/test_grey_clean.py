@@ -573,8 +573,8 @@ def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
     """``grey_setup`` with everything "auto": on a smooth scene SURE takes the second-difference
     term (recorded as estimated, with its table), the prior carries it at the strength it was
     chosen at; on flat steps it is left out after one extra risk.  With the shipped priors
-    the try is skipped unless SURE's strength is well above the guess for the noise level,
-    and always with the textured one.  A curvature carried by a given prior is replaced under "auto" and kept when given."""
+    it is tried with the smooth one and never with the textured one (however "auto" picked).
+    A curvature carried by a given prior is replaced under "auto" and kept when given."""
     from mrfclean.grey import CURVATURE_STRENGTH, grey_setup
 
     gen = np.random.default_rng(43)
@@ -598,19 +598,15 @@ def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
             assert [st.prior.strength, st.prior.curvature] in [t[:2] for t in d["sure_curvature"]]
         else:
             assert len(d["sure_curvature"]) == 2  # the risk without it and one try
-    # the shipped priors: the gate skips the try unless the strength is well above the
-    # guess, and always with the tuned prior (chosen for images no smoother than usual)
-    from mrfclean.grey import CURVATURE_GATE, strength_guess
-
+    # the shipped priors: tried with the smooth one, never with the textured one
+    # (chosen for images no smoother than usual)
     for x in (smooth, steps):
         y = (x + 0.1 * gen.standard_normal(x.shape))[None]
         for prior in ("auto", "smooth", "textured"):
             st = grey_setup(y, seed=3, prior=prior)
-            u, v = st.observed(y)
             assert st.family in ("smooth", "textured") and (prior == "auto" or st.family == prior)
-            tried = len(st.curvature_table) > 0
-            assert tried == (st.family == "smooth" and st.sure_strength
-                             >= CURVATURE_GATE * strength_guess(float(np.sqrt(np.mean(v)))))
+            assert (len(st.curvature_table) > 0) == (st.family == "smooth")
+            assert "curvature" in st.estimated
     given = GSMPrior.load().with_curvature(50.0)
     y = (steps + 0.1 * gen.standard_normal(steps.shape))[None]
     assert grey_setup(y, prior=given, seed=3).prior.curvature == 0.0
@@ -698,8 +694,8 @@ def test_smooth_prior_beats_the_textured_one_on_the_shepp_logan_phantom(seed):
 
 def test_named_priors_load_the_shipped_files_and_a_path_loads_a_saved_one(tmp_path):
     """``prior="smooth"`` / ``"textured"`` are the two shipped files whatever the image, are not
-    logged as estimated, start SURE's walk from their own fitted lines, and the textured one
-    never tries the curvature term; a path loads a prior saved with ``GSMPrior.to_dict``."""
+    logged as estimated, start SURE's walk from their own fitted lines, and only the smooth one
+    tries the curvature term; a path loads a prior saved with ``GSMPrior.to_dict``."""
     import json
 
     from mrfclean.fit.grey import signal_roughness
@@ -713,8 +709,7 @@ def test_named_priors_load_the_shipped_files_and_a_path_loads_a_saved_one(tmp_pa
         st = grey_setup(y, seed=2, prior=name)
         assert st.prior.groups == want.groups and st.family == name
         assert "prior" not in st.estimated and st.describe()["prior_family"] == name
-        if name == "textured":
-            assert st.curvature_table == []
+        assert (st.curvature_table == []) == (name == "textured")
         u, v = st.observed(y)
         first = strength_start(float(np.sqrt(np.mean(v))), signal_roughness(u, v),
                                STRENGTH_START if name == "smooth" else TUNED_STRENGTH_START)
