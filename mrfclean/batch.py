@@ -780,7 +780,8 @@ def mc_error_of(diagnostics: dict) -> float | None:
 
 SUMMARY_COLUMNS = ("relpath", "status", "kind", "method", "coupling", "flip_rate", "sigma",
                    "strength", "curvature", "rhat", "chains_agree", "final_energy", "psnr", "ssim",
-                   "error_rate", "dice", "iou", "seconds", "output", "error", "mc_error")
+                   "error_rate", "dice", "iou", "seconds", "output", "error", "mc_error",
+                   "prior")
 
 
 def summary_rows(entries) -> list[dict]:
@@ -798,6 +799,7 @@ def summary_rows(entries) -> list[dict]:
         for k in ("rhat", "chains_agree", "final_energy"):
             row[k] = d.get(k)
         row["mc_error"] = mc_error_of(d)
+        row["prior"] = p.get("prior_family")  # grey: the shipped prior used (or "given")
         for k in ("psnr", "ssim", "error_rate", "dice", "iou"):
             row[k] = m.get(k)
         rows.append(row)

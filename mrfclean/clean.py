@@ -58,7 +58,9 @@ class Settings:
         Grey: weight of the second-difference (smooth-ramp) term; ``"auto"``:
         chosen by SURE, 0 when it does not help.
     prior : {"auto", "smooth", "textured"}
-        Grey: which shipped prior (see :func:`mrfclean.grey.clean_grey`).
+        Grey: which shipped prior; ``"auto"`` picks one from the image's
+        roughness, or ``"smooth"`` when strength or curvature is set (see
+        :func:`mrfclean.grey.clean_grey`, which also takes a prior file).
     schedule, t_start, t_end
         Annealing schedule for MAP.
     sweeps, burn_in, samples, chains : int or None

@@ -129,11 +129,13 @@ def add_model_options(p):
                    help="grey: prior strength multiplier (default: chosen by SURE)")
     m.add_argument("--curvature", type=_auto_or_float,
                    help="grey: weight of the smooth-ramp (second-difference) term "
-                        "(default: chosen by SURE, 0 when it does not help)")
+                        "(default: chosen by SURE with the smooth prior, 0 when it does not help "
+                        "and with the textured prior)")
     m.add_argument("--prior", choices=PRIORS,
                    help="grey: smooth (flat or slowly varying regions between edges: cells, "
                         "phantoms; SURE may add the smooth-ramp term) or textured (fine texture "
-                        "everywhere) (default auto: chosen from the image's roughness)")
+                        "everywhere) (default auto: chosen from the image's roughness; smooth "
+                        "when --strength or --curvature is set)")
     m.add_argument("--boundary", choices=("free", "periodic"), help="lattice boundary (default free)")
     m.add_argument("--stack", choices=("volume", "planes"),
                    help="a stack of planes is one 3-D volume, z coupling from the voxel size "

@@ -8,6 +8,7 @@ map (temperature-1 chains) or annealed MAP → the input's dtype out.
 from __future__ import annotations
 
 import math
+import os
 from dataclasses import dataclass
 
 import numpy as np
@@ -111,8 +112,8 @@ AUTO_PG_SIGNIFICANCE = 4.0
 #: for STRENGTH_START (-8.41, -0.96, -0.77)) they scored -0.003 dB on the benchmark and
 #: -0.009 dB (s.e. 0.009) on 96 training-image cases, so these stay.
 STRENGTH_GUESS = (-4.140, -0.995)
-#: ... and that residual sd: a strength SURE puts this far above the guess marks
-#: an image smoother than the training images (see CURVATURE_GATE).
+#: ... and that residual sd: a strength predicted this far above the guess marks
+#: an image smoother than the training images (see SMOOTH_PRIOR_GATE).
 STRENGTH_GUESS_SD = 1.15
 #: Where the SURE walk starts: ``log strength = a + b log(sigma / span) + c log g``
 #: with ``g`` the image's estimated roughness in the prior's units
@@ -138,13 +139,15 @@ CURVATURE_STRENGTH = 1 / 3
 #: With strength, curvature and prior on "auto", the prior tuned for denoising
 #: ("textured") serves images whose roughness predicts a strength for the score-matching
 #: prior below this many times the guess for the noise level (one residual sd in log
-#: strength): no smoother than a typical training image.  On the benchmark crops only
-#: cell and moon are smoother (ratios 2-13; camera and coins 0.4-2.8).  The smooth prior
-#: then always tries the curvature term.  Until stop 17 a second gate skipped that try
-#: unless SURE's strength, too, came out above this ratio; dropping it gained 0.092 dB on
-#: the 20 held-out cases of scripts/heldout_grey.py (the term taken on four retina cases,
-#: +0.26 to +0.51 dB each) and changed nothing on 96 training-image cases or the benchmark.
-CURVATURE_GATE = math.exp(STRENGTH_GUESS_SD)
+#: strength): no smoother than a typical training image.  Smoother images get the
+#: "smooth" (score-matching) prior, which always tries the curvature term.  On the
+#: benchmark crops the prediction is 0.55-2.3 times the guess for camera and coins,
+#: 1.3-6.1 for moon (moon at sigma 0.2 gets the textured prior) and 9.8-24 for cell.
+#: Until stop 17 a second gate skipped the curvature try unless SURE's strength, too,
+#: came out above this ratio; dropping it gained 0.092 dB on the 20 held-out cases of
+#: scripts/heldout_grey.py (the term taken on four retina cases, +0.26 to +0.51 dB
+#: each) and changed nothing on 96 training-image cases or the benchmark.
+SMOOTH_PRIOR_GATE = math.exp(STRENGTH_GUESS_SD)
 
 
 def strength_guess(noise_sd):
@@ -242,6 +245,19 @@ def _number(name, v, *, positive=True):
     return f
 
 
+def check_prior(prior):
+    """Refuse a ``prior`` that is neither a name in :data:`PRIORS`, a :class:`GSMPrior`
+    nor an existing file, with one line naming the option (before any work is done)."""
+    if prior is None or isinstance(prior, GSMPrior):
+        return
+    if isinstance(prior, str) and prior in PRIORS:
+        return
+    if isinstance(prior, (str, os.PathLike)) and str(prior) and os.path.isfile(prior):
+        return
+    raise ValueError(f"prior: expected one of {', '.join(PRIORS)}, a GSMPrior or a prior file, "
+                     f"got {prior!r}")
+
+
 def check_options(shape, *, method, chains):
     """Refuse a method, chain count or image size the greyscale cleaner cannot use."""
     if method not in METHODS:
@@ -312,13 +328,15 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
 
         ``"auto"``, with strength and curvature on "auto" too, picks
         ``"textured"`` for an image no smoother than the training images (its
-        roughness predicts a strength below the curvature gate) and
-        ``"smooth"`` for a smoother one, logging ``prior`` in ``estimated``;
-        with a strength or curvature set by hand it is ``"smooth"``.  The rule
-        can pick wrong: on the Shepp-Logan phantom (flat regions, sharp edges)
-        it picks ``"textured"``, 2.1-2.4 dB below ``"smooth"`` at sigma 0.05
-        and 0.1 of the range (``scripts/heldout_grey.py``).  ``prior_family``
-        in the parameters says which was used (``"given"`` for another prior).
+        roughness predicts a strength below :data:`SMOOTH_PRIOR_GATE` times
+        the usual one) and ``"smooth"`` for a smoother one, logging ``prior``
+        in ``estimated``; with a strength or curvature set by hand it is
+        ``"smooth"``.  The rule can pick wrong: on the Shepp-Logan phantom
+        (flat regions, sharp edges) it picks ``"textured"``, below
+        ``"smooth"`` by 2.3, 2.0 and 1.1 dB at sigma 0.05, 0.1 and 0.2 of the
+        range on a 384^2 crop (``scripts/heldout_grey.py``) and by 1.6-1.8
+        dB on 256^2 crops at sigma 0.1.  ``prior_family`` in the parameters
+        says which was used (``"given"`` for another prior).
     schedule : Schedule, optional
         Annealing schedule for ``"map"``; default geometric 1.0 → 0.01.
     sweeps : int, optional
@@ -367,6 +385,7 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
     if a.ndim not in (2, 3) or a.size == 0:
         raise ValueError(f"expected a non-empty 2-D image or 3-D stack, got shape {a.shape}")
     check_options(a.shape, method=method, chains=chains)
+    check_prior(prior)
     if a.dtype.kind == "f" and not np.all(np.isfinite(a)):
         raise ValueError("image contains NaN or infinite values")
     if not 0 < float(level) < 1:
@@ -400,7 +419,9 @@ class GreySetup:
     ``noise_curve`` record how the strength, the curvature weight and the noise
     were chosen (None when given);
     ``sure_strength`` is the strength SURE chose before the curvature term was
-    tried (the prior's own strength unless the term was taken).
+    tried (the prior's own strength unless the term was taken); ``family`` is
+    ``"smooth"`` or ``"textured"`` (a shipped prior, see :data:`PRIORS`) or
+    ``"given"``.
     """
 
     term: object  # GaussianNoise or PoissonGaussianNoise
@@ -516,7 +537,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     if choice == "auto":
         auto = strength == "auto" and curvature == "auto"
         choice = ("textured" if auto and strength_start(noise_sd, roughness)
-                  < CURVATURE_GATE * strength_guess(noise_sd) else "smooth")
+                  < SMOOTH_PRIOR_GATE * strength_guess(noise_sd) else "smooth")
         if auto:
             estimated.append("prior")
     tuned = choice == "textured"

@@ -255,6 +255,8 @@ def _image_card(entry, outdir: Path) -> str:
     for k in ("coupling", "flip_rate", "sigma", "strength", "curvature"):
         if isinstance(p.get(k), (int, float)):
             facts[k] = p[k]
+    if p.get("prior_family"):
+        facts["prior"] = p["prior_family"]
     facts.update({"R-hat": d.get("rhat"), "final energy": d.get("final_energy"),
                   "seconds": entry.get("seconds")})
     from .batch import mc_error_of

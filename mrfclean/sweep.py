@@ -89,7 +89,7 @@ def sweep_task(task: SweepTask) -> dict:
         v = result.params.get(k)
         if isinstance(v, (int, float)) and k not in task.overrides:
             row[f"used_{k}"] = float(v)
-    if "prior_family" in result.params and "prior" not in task.overrides:
+    if "prior_family" in result.params and task.overrides.get("prior", "auto") == "auto":
         row["used_prior"] = result.params["prior_family"]
     row["seconds"] = time.perf_counter() - t0
     return jsonable(row)

@@ -759,7 +759,7 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
     >>> bool(np.abs(res.estimate - clean).mean() < np.abs(noisy - clean).mean() / 2)
     True
     """
-    from .grey import DEFAULT_CHAINS, DEFAULT_LEVEL, DEFAULT_TOL, check_options, grey_setup
+    from .grey import DEFAULT_CHAINS, DEFAULT_LEVEL, DEFAULT_TOL, check_options, check_prior, grey_setup
     from .progress import progress_bar
 
     if int(tile) < MIN_TILE:
@@ -775,6 +775,7 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
     dtype = lv.check_dtype(rows.dtype)
     Z, H, W = rows.shape
     check_options(rows.shape, method=method, chains=chains)
+    check_prior(prior)
     scan_levels(rows)  # NaN / infinity check, band by band
     seed = to_seed(rng)
     fw = _fit_window(rows, fit_window)

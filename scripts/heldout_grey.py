@@ -36,6 +36,8 @@ import skimage.data
 from skimage.color import rgb2gray
 from skimage.restoration import denoise_tv_chambolle
 
+from mrfclean.grey import PRIORS
+
 #: Top-left corners of the retina crops: inside the fundus, away from the optic disc.
 RETINA_CORNERS = ((450, 450), (650, 850), (850, 400), (350, 800))
 SIGMAS = (0.05, 0.1, 0.2)
@@ -103,7 +105,7 @@ def main(argv=None) -> int:
                                 epilog="example: python scripts/heldout_grey.py --workers 2")
     p.add_argument("--seed", type=int, default=11)
     p.add_argument("--workers", type=int, default=2)
-    p.add_argument("--prior", choices=("auto", "smooth", "textured"), default="auto",
+    p.add_argument("--prior", choices=PRIORS, default="auto",
                    help="the cleaner's prior option (default auto)")
     args = p.parse_args(argv)
     c = cases(args.seed)

@@ -583,7 +583,7 @@ def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
     steps = 0.2 + 0.6 * (((ii // 16) + (jj // 16)) % 2)
     for x, want in ((smooth, True), (steps, False)):
         y = (x + 0.1 * gen.standard_normal(x.shape))[None]
-        # a prior given explicitly: no gate, SURE itself decides
+        # a prior given explicitly: SURE itself decides
         st = grey_setup(y, seed=3, prior=GSMPrior.load())
         d = st.describe()
         assert "curvature" in st.estimated and "sure_curvature" in d
@@ -616,12 +616,12 @@ def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
 @pytest.mark.parametrize("name", ["camera", "coins", "cell"])
 def test_nothing_set_picks_the_tuned_prior_unless_the_image_is_smoother_than_usual(name):
     """With nothing set, the prior tuned for denoising serves images whose roughness
-    predicts a strength below the curvature gate for the score-matching prior (no
-    smoother than the training images); smoother ones (cell) keep the score-matching
+    predicts a strength for the score-matching prior below SMOOTH_PRIOR_GATE times the
+    usual one (no smoother than the training images); smoother ones (cell) keep the score-matching
     prior and may take the curvature term.  A strength or curvature set by the user,
     or a prior given, keeps the score-matching prior.  The choice is logged."""
     from mrfclean.fit.grey import signal_roughness
-    from mrfclean.grey import CURVATURE_GATE, grey_setup, strength_guess, strength_start
+    from mrfclean.grey import SMOOTH_PRIOR_GATE, grey_setup, strength_guess, strength_start
     from mrfclean.models.grey import TUNED_PRIOR_FILE
 
     x = img_as_float(getattr(skimage.data, name)())
@@ -631,7 +631,7 @@ def test_nothing_set_picks_the_tuned_prior_unless_the_image_is_smoother_than_usu
     st = grey_setup(y, seed=2)
     u, v = st.observed(y)
     sd = float(np.sqrt(np.mean(v)))
-    usual = strength_start(sd, signal_roughness(u, v)) < CURVATURE_GATE * strength_guess(sd)
+    usual = strength_start(sd, signal_roughness(u, v)) < SMOOTH_PRIOR_GATE * strength_guess(sd)
     # measured: the predicted strength is 0.84 (camera) and 0.63 (coins) times the guess for
     # the noise level, 6.8 times on cell (gate 3.16)
     assert usual == (name != "cell")
@@ -680,7 +680,8 @@ def test_smooth_prior_beats_the_textured_one_on_the_shepp_logan_phantom(seed):
     training or benchmark image), 256^2 at the top left corner (skull ring, background,
     inner ellipses), sigma 0.1: ``prior="smooth"`` beats ``prior="textured"``, everything
     else chosen by SURE.  Measured on two noise draws at this crop and a second one:
-    +1.63 to +1.79 dB (scripts/heldout_grey.py, 384^2: +1.0 to +2.3 dB); floor +0.8 dB.
+    +1.63 to +1.79 dB (scripts/heldout_grey.py, 384^2: +2.3, +2.0 and +1.1 dB at sigma
+    0.05, 0.1 and 0.2); floor +0.8 dB.
     ``"auto"`` picks the textured prior here (the phantom's edges read as roughness), which
     is why the option exists."""
     x = skimage.data.shepp_logan_phantom()[:256, :256].astype(np.float64)
@@ -695,9 +696,11 @@ def test_smooth_prior_beats_the_textured_one_on_the_shepp_logan_phantom(seed):
 def test_named_priors_load_the_shipped_files_and_a_path_loads_a_saved_one(tmp_path):
     """``prior="smooth"`` / ``"textured"`` are the two shipped files whatever the image, are not
     logged as estimated, start SURE's walk from their own fitted lines, and only the smooth one
-    tries the curvature term; a path loads a prior saved with ``GSMPrior.to_dict``."""
+    tries the curvature term; a path loads a prior saved with ``GSMPrior.to_dict``; any other
+    value is refused with one line."""
     import json
 
+    from mrfclean.clean import Settings
     from mrfclean.fit.grey import signal_roughness
     from mrfclean.grey import STRENGTH_START, TUNED_STRENGTH_START, grey_setup, strength_start
     from mrfclean.models.grey import TUNED_PRIOR_FILE
@@ -714,6 +717,12 @@ def test_named_priors_load_the_shipped_files_and_a_path_loads_a_saved_one(tmp_pa
         first = strength_start(float(np.sqrt(np.mean(v))), signal_roughness(u, v),
                                STRENGTH_START if name == "smooth" else TUNED_STRENGTH_START)
         assert any(math.isclose(lam, first) for lam, _ in st.sure_table)
+    # anything else is refused up front, with one line naming the option
+    for bad in ("smoth", "", 3, True):
+        with pytest.raises(ValueError, match="^prior: expected one of auto, smooth, textured"):
+            clean_grey(y[0], prior=bad)
+    with pytest.raises(ValueError, match="prior must be one of"):
+        Settings(prior="given")
     path = tmp_path / "p.json"
     path.write_text(json.dumps(files["textured"].to_dict()))
     st = grey_setup(y, seed=2, prior=str(path), strength=0.7, curvature=0.0)

@@ -318,7 +318,7 @@ def test_browser_check_catches_a_missing_image(tmp_path):
 def test_grey_card_shows_the_monte_carlo_error(tmp_path):
     """A greyscale result's card and the batch summary name the posterior mean's
     Monte-Carlo error (the ``mc_error`` its diagnostics carry, see
-    ``estimates.Diagnostics``)."""
+    ``estimates.Diagnostics``) and the shipped prior used."""
     from skimage.data import camera
 
     (tmp_path / "in").mkdir()
@@ -328,8 +328,11 @@ def test_grey_card_shows_the_monte_carlo_error(tmp_path):
     r = run_batch([tmp_path / "in"], tmp_path / "out", settings=Settings(),
                   options=BatchOptions(workers=1, progress=False))
     mc = r.entries[0]["diagnostics"]["mc_error"]
-    assert 0 < mc < 1
-    with open(tmp_path / "out" / "summary.csv") as fh:  # the batch summary carries it too
-        assert float(next(csv.DictReader(fh))["mc_error"]) == pytest.approx(mc)
+    family = r.entries[0]["params"]["prior_family"]
+    assert 0 < mc < 1 and family in ("smooth", "textured")
+    with open(tmp_path / "out" / "summary.csv") as fh:  # the batch summary carries both too
+        row = next(csv.DictReader(fh))
+    assert float(row["mc_error"]) == pytest.approx(mc) and row["prior"] == family
     text = batch_report(tmp_path / "out").read_text()
     assert "Monte-Carlo error / posterior sd" in text
+    assert ">prior</th>" in text and f">{family}</td>" in text

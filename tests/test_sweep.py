@@ -65,6 +65,24 @@ def test_rows_match_direct_cleaning_and_scoring():
         assert row["status"] == "done" and row["seconds"] > 0
 
 
+def test_grey_sweep_over_the_prior_says_which_one_auto_used():
+    """Sweeping ``prior``: the rows left on "auto" name the shipped prior it picked
+    (``used_prior``, as ``clean`` reports it), the rows that named one need not."""
+    from skimage.data import camera
+
+    x = camera()[200:248, 200:248].astype(np.float64)
+    y = np.clip(x + 20 * np.random.default_rng(0).standard_normal(x.shape), 0, 255)
+    pairs = {"g": (y.astype(np.uint8), x.astype(np.uint8))}
+    base = Settings(kind="grey", burn_in=1, samples=2, chains=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ChainsDisagree)
+        table = run_sweep(pairs, grid={"prior": ["auto", "smooth"]}, base=base, workers=1, seed=3)
+        direct = clean(pairs["g"][0], settings=base, rng=image_seed(3, "g"))
+    rows = {r["prior"]: r for r in table.rows}
+    assert rows["auto"]["used_prior"] == direct.params["prior_family"]
+    assert "used_prior" not in rows["smooth"]
+
+
 def test_best_setting_per_metric_from_the_means():
     pairs = {"p0": _pair(2), "p1": _pair(3)}
     table = run_sweep(pairs, grid={"coupling": [0.3, 0.7, 1.2]}, base=FAST, workers=1)

@@ -279,6 +279,19 @@ def test_grey_tiles_do_not_depend_on_their_order_and_keep_the_dtype():
     assert a.params["tiles"] == 4 and a.params["halo"] == DEFAULT_GREY_HALO
 
 
+@pytest.mark.parametrize("prior", ["smooth", "textured"])
+def test_grey_tiles_use_the_named_prior(prior):
+    """``Settings(prior=...)`` reaches the tiled cleaner: every tile shares the one shipped
+    prior that was asked for, and the parameters say which."""
+    from mrfclean.clean import clean
+
+    _, y = _grey_scan()
+    res = clean(y.astype(np.float32), rng=4,
+                settings=Settings(kind="grey", prior=prior, tile=64, burn_in=1, samples=2,
+                                  chains=1))
+    assert res.params["tiles"] == 4 and res.params["prior_family"] == prior
+
+
 def test_grey_tiled_file_writes_result_and_std_map_band_by_band(tmp_path):
     """From the command line: a uint8 greyscale TIFF cleaned with --tile gives a uint8 result
     with the input's resolution and a float32 std map; the error against the clean crop falls."""
