@@ -526,6 +526,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     setup = GreySetup(term, low, span, None, estimated, None, noise_curve)  # prior: below
     u, var_u = setup.observed(y, pilot)
     noise_sd = float(np.sqrt(np.mean(var_u)))
+    # a shipped prior by name ("auto" for None), or None for a GSMPrior or a file
     choice = "auto" if prior is None else prior if isinstance(prior, str) and prior in PRIORS else None
     roughness = signal_roughness(u, var_u) if choice and strength == "auto" else None
     # With strength and curvature on "auto" and no prior named, an image no smoother
