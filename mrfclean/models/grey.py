@@ -597,13 +597,6 @@ class GreyModel(ChainModel):
         self._rhs[0] = self.b
         self._pbuf = None  # clique normals of a perturbation, allocated at the first draw
         self._cbuf = None  # and those of the second-difference triples
-        # The latest conditional mean of the run's chains: where the next chain's first
-        # solves start (reset by chain 0, so equal seeds give equal runs).
-        # Only an initial guess (every solve still reaches its tolerance), closer to the
-        # answer than a smoothed start image.  With the default two final chains on the
-        # benchmark's thirteen 512^2 crops: 1-3% fewer iterations per solve, the chains'
-        # time 1.7% less in sum (median per case 2.9%; measured at stop 18, alternating).
-        self._last_mu = None
         self.stats = SolverStats()
 
     # --- linear algebra -------------------------------------------------------------
@@ -645,8 +638,6 @@ class GreyModel(ChainModel):
 
     # --- ChainModel -------------------------------------------------------------------
     def start(self, chain, seed):
-        if chain == 0:  # a run's first chain starts cold, so a run repeats whatever ran before
-            self._last_mu = None
         return GreyState(self.starts[chain % len(self.starts)].copy())
 
     def _draw_scales(self, state, temperature, key):
@@ -692,22 +683,14 @@ class GreyModel(ChainModel):
                                       kernels.derive_key(np.uint64(key), kernels._GREY_NOISE_SALT),
                                       math.sqrt(temperature), self._rhs[1], self._pbuf,
                                       self.curv, self._cbuf, self._cs)
-            warm = self._last_mu is not None and state.draws == 0
             if state.draws < self.single_solves:
                 np.add(self._rhs[0], self._rhs[1], out=self._rhs[1])
-                X, it = self.solve(self._rhs[1:], (self._last_mu if warm else state.x,),
-                                   (self.sample_tol,))
+                X, it = self.solve(self._rhs[1:], (state.x,), (self.sample_tol,))
                 state.x[...] = X[0]
                 state.mu[...] = X[0]  # not a conditional mean: only the next solve's start
             else:
-                warm = self._last_mu is not None and state.draws == self.single_solves
-                X, it = self.solve(self._rhs, (self._last_mu if warm else state.mu, 0.0),
-                                   (self.mean_tol, self.sample_tol))
+                X, it = self.solve(self._rhs, (state.mu, 0.0), (self.mean_tol, self.sample_tol))
                 state.mu[...] = X[0]
-                if self._last_mu is None:
-                    self._last_mu = state.mu.copy()
-                else:
-                    self._last_mu[...] = state.mu
                 if self.relax and state.draws > 0:  # from a draw, never from a start image
                     a = self.relax
                     state.x[...] = X[0] + a * (state.x - X[0]) + math.sqrt(1 - a * a) * X[1]
