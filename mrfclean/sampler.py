@@ -78,6 +78,15 @@ class ChainModel:
         """A new :class:`Tally` that accumulates posterior moments."""
         raise NotImplementedError
 
+    def close_chain(self, state, tally) -> None:
+        """Called by :func:`run` after a tallied chain's last sweep, before ``tally.end_chain``.
+
+        A model may add to ``tally`` what the chain's final state still offers
+        (the greyscale model: the conditional mean of the scales the last sweep
+        drew, see :class:`mrfclean.models.grey.GreyModel`'s ``closing_mean``).
+        Nothing by default.
+        """
+
     def image(self, state) -> np.ndarray:  # pragma: no cover
         """``state`` in image layout ``(Z, H, W)``."""
         raise NotImplementedError
@@ -193,6 +202,7 @@ def run(model: ChainModel, *, schedule: Schedule | None = None, sweeps: int, cha
                 last = st
                 bar.update(1)
             if total is not None:
+                model.close_chain(last.state, total)
                 total.end_chain()
             state = last.state
             passes.append(model.quench(state) if quench else 0)
