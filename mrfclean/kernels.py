@@ -92,6 +92,63 @@ _LN2LO = 1.90821492927058770002e-10
 
 
 @njit(inline="always", cache=True)
+def _exp_taylor(r):
+    """``exp(r)`` for ``|r| <= ln2 / 2`` by its degree-13 Taylor polynomial (Horner form;
+    the first omitted term is below 1e-16 relative there)."""
+    p = 1.0 / 6227020800.0
+    p = p * r + 1.0 / 479001600.0
+    p = p * r + 1.0 / 39916800.0
+    p = p * r + 1.0 / 3628800.0
+    p = p * r + 1.0 / 362880.0
+    p = p * r + 1.0 / 40320.0
+    p = p * r + 1.0 / 5040.0
+    p = p * r + 1.0 / 720.0
+    p = p * r + 1.0 / 120.0
+    p = p * r + 1.0 / 24.0
+    p = p * r + 1.0 / 6.0
+    p = p * r + 0.5
+    p = p * r + 1.0
+    return p * r + 1.0
+
+
+#: ``exp(-y)`` for ``y`` above this is below the smallest normal double (2^-1022); the
+#: row exponential returns 0 there.
+_EXP_MAX_DECAY = 708.0
+
+
+@njit(inline="always", cache=True)
+def _exp_decay_row(g, d2, out, bits):
+    """``out[t] = exp(g d2[t])`` for ``g d2[t] <= 0``, in two passes that vectorise.
+
+    The Cody-Waite reduction ``y = m ln2 - r`` and :func:`_exp_taylor` give
+    ``exp(-y) = exp(r) 2^-m``; the factor ``2^-m`` is built as the bits of a
+    double in ``bits`` (an int64 row, any contents) and applied in a second
+    pass.  Arguments below ``-708`` give 0 instead of a subnormal number.  A
+    libm ``exp`` per clique does not vectorise (4.7 against 1.8 ns per value in
+    rows of 512, measured).
+    """
+    n = d2.shape[0]
+    for t in range(n):
+        y = -g * d2[t]
+        yc = min(y, _EXP_MAX_DECAY)
+        m = np.floor(yc * _LOG2E + 0.5)
+        r = (m * _LN2HI - yc) + m * _LN2LO
+        out[t] = _exp_taylor(r) if y <= _EXP_MAX_DECAY else 0.0
+        bits[t] = (int64(1023) - int64(m)) << 52
+    scale = bits.view(np.float64)
+    for t in range(n):
+        out[t] *= scale[t]
+
+
+@njit(cache=True)
+def exp_decay_many(g, d2):
+    """``exp(g d2)`` by :func:`_exp_decay_row`, for tests."""
+    out = np.empty(d2.shape[0])
+    _exp_decay_row(g, d2, out, np.empty(d2.shape[0], np.int64))
+    return out
+
+
+@njit(inline="always", cache=True)
 def heat_bath_up(x, u):
     """Return ``u < 1 / (1 + exp(-x))`` for a uniform ``u`` in [0, 1).
 
@@ -106,20 +163,7 @@ def heat_bath_up(x, u):
     y = min(abs(x), 40.0)
     m = np.floor(y * _LOG2E + 0.5)
     r = (m * _LN2HI - y) + m * _LN2LO
-    p = 1.0 / 6227020800.0
-    p = p * r + 1.0 / 479001600.0
-    p = p * r + 1.0 / 39916800.0
-    p = p * r + 1.0 / 3628800.0
-    p = p * r + 1.0 / 362880.0
-    p = p * r + 1.0 / 40320.0
-    p = p * r + 1.0 / 5040.0
-    p = p * r + 1.0 / 720.0
-    p = p * r + 1.0 / 120.0
-    p = p * r + 1.0 / 24.0
-    p = p * r + 1.0 / 6.0
-    p = p * r + 0.5
-    p = p * r + 1.0
-    p = p * r + 1.0  # p = exp(r), so exp(-y) = p / 2**m
+    p = _exp_taylor(r)  # exp(-y) = p / 2**m
     two_m = float64(uint64(1) << uint64(int64(m)))
     v = 1.0 - u
     if x >= 0.0:
@@ -818,8 +862,7 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
         gnv = gnrow[lo + dj:hi + dj]
         for t in range(n):
             d2v[t] *= 0.5 * (gv[t] + gnv[t])
-    for t in range(n):
-        ev[t] = np.exp(g * d2v[t])
+    _exp_decay_row(g, d2v, ev, buf[K, :n].view(np.int64))  # buf[K]: free until the sums
     for c in range(K):  # buf[1 + c] = sum of the first c + 1 terms am[c'] e^(4^c')
         cur = buf[1 + c, :n]
         ac = am[c]

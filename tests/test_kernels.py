@@ -66,6 +66,31 @@ def test_heat_bath_is_accurate_next_to_the_threshold():
     assert not kernels.heat_bath_many(x[ok], above[ok]).any()
 
 
+def test_row_exponential_matches_numpy_exp():
+    """The scale draw's vectorised ``exp(g d2)`` (``g <= 0 <= d2``) against numpy's ``exp``:
+    within 2 units in the last place wherever the result is a normal double, down to
+    ``exp(-708)``; 0 below (where numpy gives a subnormal number or 0; the draw sends such
+    cliques down its general path, see ``_LADDER_TINY``).  The arguments span the
+    reduction's whole range, its rounding boundaries (odd multiples of ln2 / 2) and the
+    cut-off."""
+    rng = np.random.default_rng(5)
+    ln2 = np.log(2.0)
+    y = np.concatenate([
+        rng.exponential(3.0, 200_000),
+        rng.uniform(0.0, 708.0, 200_000),
+        (np.arange(1, 2042, 2) * ln2 / 2)[:, None] * (1 + np.array([-1e-15, 0.0, 1e-15])),
+        np.array([0.0, 1e-300, 5e-324, 707.9, 708.0, np.nextafter(708.0, 709.0), 745.2, 1e4]),
+    ], axis=None)
+    for g, d2 in ((-1.0, y), (-0.37, y / 0.37), (-2.5e3, y / 2.5e3)):
+        got = kernels.exp_decay_many(g, d2)
+        arg = g * d2
+        want = np.exp(arg)
+        live = -arg <= 708.0
+        assert np.all(got[~live] == 0.0)
+        ulp = np.spacing(want[live])
+        assert np.max(np.abs(got[live] - want[live]) / ulp) <= 2.0
+
+
 # --- counter-based random numbers -------------------------------------------------------
 def test_splitmix64_reference_values():
     # uniform(key=0, counter=k) is SplitMix64 (Steele, Lea & Flood 2014) seeded
