@@ -808,4 +808,4 @@ class GreyModel(ChainModel):
     def describe(self):
         return {**self.prior.describe(), "cg_tol": self.tol, "cg_mean_tol": self.mean_tol,
                 "cg_sample_tol": self.sample_tol, "relax": self.relax,
-                "reflect_scales": self.reflect_scales}
+                "reflect_scales": self.reflect_scales, "closing_mean": self.closing_mean}
