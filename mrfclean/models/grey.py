@@ -626,6 +626,11 @@ class GreyModel(ChainModel):
         kernels.gmrf_diagonal(self.w, self.offsets, self._dw_s, self.curv, self._cs, self._diag)
         np.divide(1.0, self._diag, out=self._minv)
 
+    def _set_scales(self, comp):
+        """The operator ``Q`` for the drawn components ``comp``: clique weights, then diagonal."""
+        kernels.gsm_expand(comp, self.prec, self.strength, self.w, self.offsets, self.gs)
+        self._set_operator()
+
     def apply(self, x, weights=None):
         """``Q x`` for the current (or given) clique weights; ``x`` of shape ``(Z, H, W)``."""
         w = np.ascontiguousarray(self.w if weights is None else weights, dtype=np.float64)
@@ -694,8 +699,7 @@ class GreyModel(ChainModel):
         if state.comp is None:
             self._draw_scales(state, temperature,
                               kernels.derive_key(np.uint64(key), kernels._GREY_START_SALT))
-        kernels.gsm_expand(state.comp, self.prec, self.strength, self.w, self.offsets, self.gs)
-        self._set_operator()
+        self._set_scales(state.comp)
         if temperature > 0:
             if self._pbuf is None:
                 self._pbuf = np.empty_like(self.w)
@@ -770,8 +774,7 @@ class GreyModel(ChainModel):
         """
         if not self.closing_mean or state.comp is None or state.draws <= self.single_solves:
             return
-        kernels.gsm_expand(state.comp, self.prec, self.strength, self.w, self.offsets, self.gs)
-        self._set_operator()
+        self._set_scales(state.comp)
         X, _ = self.solve(self._rhs[:1], state.mu[None])
         tally.add_mean(X[0].astype(np.float64))
 
