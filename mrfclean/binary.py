@@ -36,7 +36,7 @@ def _auto_noise(image):
 
 def clean_binary(image, *, method="mpm", noise="auto", coupling="auto", coupling_z="auto",
                  flip_rate="auto", levels="auto", schedule: Schedule | None = None,
-                 sweeps=None, burn_in=None, samples=None, chains=DEFAULT_CHAINS,
+                 sweeps=None, burn_in=None, samples=None, chains=None,
                  boundary="free", uncertainty=False, certify=False, rng=None,
                  progress=False) -> CleanResult:
     """Clean a bi-level image (or a stack of them) with an Ising posterior.
@@ -70,8 +70,8 @@ def clean_binary(image, *, method="mpm", noise="auto", coupling="auto", coupling
         Annealing sweeps per chain (``"map"``).
     burn_in, samples : int, optional
         Sweeps discarded and kept per temperature-1 chain.
-    chains : int
-        Independent chains (R-hat needs at least 2).
+    chains : int, optional
+        Independent chains (R-hat needs at least 2); default :data:`DEFAULT_CHAINS`.
     boundary : {"free", "periodic"}
     uncertainty : bool
         With ``"map"``, also run temperature-1 chains for P(on) and its std.
@@ -115,6 +115,7 @@ def clean_binary(image, *, method="mpm", noise="auto", coupling="auto", coupling
         raise ValueError(f"expected a non-empty 2-D image or 3-D stack, got shape {a.shape}")
     if a.dtype.kind == "f" and not np.all(np.isfinite(a)):
         raise ValueError("image contains NaN or infinite values")
+    chains = DEFAULT_CHAINS if chains is None else int(chains)
     noise = _auto_noise(a) if noise == "auto" else noise
     grid = Grid.for_image(a, boundary=boundary)
     seed = to_seed(rng)

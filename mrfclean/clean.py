@@ -102,7 +102,7 @@ class Settings:
     sweeps: int | None = None
     burn_in: int | None = None
     samples: int | None = None
-    chains: int = 2
+    chains: int | None = None  # None: each cleaner's default
     boundary: str = "free"
     uncertainty: bool = False
     certify: bool = False

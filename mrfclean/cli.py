@@ -153,7 +153,9 @@ def add_model_options(p):
     s.add_argument("--sweeps", type=_positive_int, help="annealing sweeps per chain")
     s.add_argument("--burn-in", type=_count, help="sweeps discarded per temperature-1 chain")
     s.add_argument("--samples", type=_positive_int, help="sweeps kept per temperature-1 chain")
-    s.add_argument("--chains", type=_positive_int, help="independent chains (default 2)")
+    s.add_argument("--chains", type=_positive_int,
+                   help="independent chains (default 2; greyscale: 5 temperature-1 chains, "
+                        "2 annealing chains)")
     s.add_argument("--seed", type=_count,
                    help="run seed; each image's seed is derived from it and the image's relative "
                         "path (default 0: runs repeat exactly)")

@@ -759,7 +759,7 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
     >>> bool(np.abs(res.estimate - clean).mean() < np.abs(noisy - clean).mean() / 2)
     True
     """
-    from .grey import DEFAULT_CHAINS, DEFAULT_LEVEL, DEFAULT_TOL, check_options, check_prior, grey_setup
+    from .grey import DEFAULT_LEVEL, DEFAULT_TOL, check_options, check_prior, grey_setup
     from .progress import progress_bar
 
     if int(tile) < MIN_TILE:
@@ -769,7 +769,7 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
     if int(halo) < 0:
         raise ValueError(f"halo must be a whole number of at least 0, got {halo!r}")
     halo = int(halo)
-    chains = DEFAULT_CHAINS if chains is None else int(chains)
+    chains = None if chains is None else int(chains)  # None: the greyscale defaults
     t_start = time.perf_counter()
     rows = image if isinstance(image, VolumeRows) else VolumeRows(image)
     dtype = lv.check_dtype(rows.dtype)
