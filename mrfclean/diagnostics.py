@@ -35,6 +35,9 @@ def rhat(chains) -> float:
 
     where ``W`` is the mean within-chain variance and ``B/n`` the variance of
     the chain means, computed after splitting each chain in two halves [2]_.
+    Chains of 2 or 3 draws are too short to split and are compared whole, as
+    in the original statistic [1]_ (the greyscale cleaner's default chains keep
+    2 draws each).
 
     Parameters
     ----------
@@ -44,7 +47,7 @@ def rhat(chains) -> float:
     Returns
     -------
     float
-        R-hat; ``nan`` when there are fewer than 4 draws per chain, 1.0 when
+        R-hat; ``nan`` for chains of 1 draw, or a single chain of fewer than 4; 1.0 when
         every draw is identical (nothing varies, nothing to disagree on).
 
     Examples
@@ -58,11 +61,12 @@ def rhat(chains) -> float:
     if x.ndim != 2:
         raise ValueError(f"chains must be a 2-D array (chains, draws), got shape {x.shape}")
     m, n = x.shape
-    if n < 4:
+    if n >= 4:
+        half = n // 2
+        x = np.concatenate([x[:, :half], x[:, n - half:]], axis=0)
+        n = half
+    elif m < 2 or n < 2:
         return float("nan")
-    half = n // 2
-    x = np.concatenate([x[:, :half], x[:, n - half:]], axis=0)
-    n = half
     means = x.mean(axis=1)
     W = x.var(axis=1, ddof=1).mean()
     B_over_n = means.var(ddof=1)

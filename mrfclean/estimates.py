@@ -171,7 +171,7 @@ def sample_posterior(model, *, burn_in: int, samples: int, chains: int, seed: in
                       chains=chains, seed=seed, burn_in=burn_in, tally=True, progress=progress,
                       label="sampling")
     r = rhat(run.summaries) if chains > 1 else float("nan")
-    if chains > 1 and not r <= RHAT_LIMIT:
+    if r > RHAT_LIMIT:  # not when R-hat could not be computed (nan)
         warnings.warn(f"chains disagree (R-hat {r:.3f} > {RHAT_LIMIT}); "
                       "run longer or check the parameters", ChainsDisagree, stacklevel=2)
     return PosteriorRun(run.tally, r, run)
