@@ -421,8 +421,8 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
     block = sample_block(y, setup, method=method, schedule=schedule, sweeps=sweeps,
                          burn_in=burn_in, samples=samples, chains=chains, tol=tol, seed=seed,
                          progress=progress)
-    params = {"method": method, "chains": block.params["chains"], "seed": seed, **setup.describe(),
-              **block.params, "level": float(level)}
+    params = {"method": method, "seed": seed, **setup.describe(), **block.params,
+              "level": float(level)}  # block.params holds the chains run
     mean = (setup.low + setup.span * block.mean_u).astype(np.float32).reshape(a.shape)
     std = (setup.span * block.std_u).astype(np.float32).reshape(a.shape)
     estimate = lv.from_work(setup.low + setup.span * block.est_u, a.dtype).reshape(a.shape)

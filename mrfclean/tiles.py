@@ -833,7 +833,7 @@ def clean_grey_tiled(image, *, tile=DEFAULT_TILE, halo=DEFAULT_GREY_HALO, method
                 _put(target, rows.flat, r0, r1, band[k])
     diag = combine_diagnostics(parts, labels)
     diag.final_energy = float("nan")  # tiles overlap: their energies do not add up to the image's
-    params = {"method": method, "chains": chains, "seed": seed, **setup.describe(), **first,
+    params = {"method": method, "seed": seed, **setup.describe(), **first,  # first: chains run
               "cg_iterations_per_solve": round(float(np.mean(iterations)), 2),
               "tile": [int(tile), int(tile)], "halo": halo, "tiles": len(bands) * len(cols),
               "fit_window": list(fw), "level": DEFAULT_LEVEL, "seconds": time.perf_counter() - t_start}
