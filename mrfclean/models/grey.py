@@ -397,9 +397,9 @@ class GreyTally(Tally):
 
     def add_mean(self, mu):
         """A conditional mean without its draw (a chain's closing mean): into the mean
-        and the spread of the means, not into the conditional variance."""
-        self.s1 += mu
-        self.s2 += mu * mu
+        and the spread of the means, not into the conditional variance (``x = mu``
+        adds 0 there)."""
+        kernels.tally_moments(self.s1, self.s2, self.sv, mu, mu)
         self.n += 1
 
     def merge(self, other):
