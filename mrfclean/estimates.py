@@ -169,7 +169,7 @@ def sample_posterior(model, *, burn_in: int, samples: int, chains: int, seed: in
         raise ValueError(f"samples must be at least 1, got {samples}")
     run = sampler.run(model, schedule=Constant(temperature), sweeps=burn_in + samples,
                       chains=chains, seed=seed, burn_in=burn_in, tally=True, progress=progress,
-                      label="sampling")
+                      label="sampling", keep_states=False)
     r = rhat(run.summaries) if chains > 1 else float("nan")
     if r > RHAT_LIMIT:  # not when R-hat could not be computed (nan)
         warnings.warn(f"chains disagree (R-hat {r:.3f} > {RHAT_LIMIT}); "

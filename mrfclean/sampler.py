@@ -163,7 +163,7 @@ class ChainRun:
 
 def run(model: ChainModel, *, schedule: Schedule | None = None, sweeps: int, chains: int = 1,
         seed: int, burn_in: int = 0, tally: bool = False, quench: bool = False,
-        progress: bool = False, label: str = "sweeps") -> ChainRun:
+        progress: bool = False, label: str = "sweeps", keep_states: bool = True) -> ChainRun:
     """Drive ``chains`` independent chains of ``model`` and keep their records.
 
     Parameters
@@ -177,6 +177,10 @@ def run(model: ChainModel, *, schedule: Schedule | None = None, sweeps: int, cha
         Accumulate posterior moments over the kept sweeps of all chains.
     quench : bool
         End every chain with a zero-temperature descent (ICM) until no change.
+    keep_states : bool
+        Keep every chain's final state in ``ChainRun.states``.  ``False`` (a
+        tallied run that needs only its tally) frees each chain's state before
+        the next chain starts, so the memory of states is that of one chain.
     """
     schedule = schedule or Constant(1.0)
     if sweeps < 1:
@@ -192,7 +196,7 @@ def run(model: ChainModel, *, schedule: Schedule | None = None, sweeps: int, cha
     with progress_bar(total=chains * sweeps, enabled=progress, desc=label) as bar, \
             kernel_threads(model.grid.size):
         for c in range(chains):
-            last = None
+            last = state = st = None  # the previous chain's state is not held during this one
             for st in iterate(model, schedule, sweeps=sweeps, chain=c, seed=seed, burn_in=burn_in):
                 energies[c, st.sweep] = st.energy
                 if st.sampling:
@@ -207,6 +211,7 @@ def run(model: ChainModel, *, schedule: Schedule | None = None, sweeps: int, cha
             state = last.state
             passes.append(model.quench(state) if quench else 0)
             finals.append(model.energy(state) if quench else last.energy)
-            states.append(state)
+            if keep_states:
+                states.append(state)
     return ChainRun(states, energies, schedule.temperatures(sweeps), summaries, total, passes,
                     np.asarray(finals))

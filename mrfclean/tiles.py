@@ -598,7 +598,6 @@ def clean_binary_tiled(image, *, tile=DEFAULT_TILE, method="mpm", noise="auto", 
     if sampled:
         post = sample_posterior(model, burn_in=burn_in, samples=samples, chains=chains,
                                 seed=seed ^ POSTERIOR_SALT, progress=progress)
-        post.run.states.clear()
         record_posterior(diag, post)
         params.update(burn_in=burn_in, samples=samples)
         total = post.tally

@@ -800,6 +800,26 @@ def test_closing_mean_is_the_conditional_mean_of_the_last_scales():
 
 
 @pytest.mark.slow
+def test_tallied_run_without_states_is_the_same_run():
+    """``keep_states=False`` (what ``sample_posterior`` asks for, so that a run holds one
+    chain's state at a time instead of every chain's) changes no draw: the tally and the
+    energies equal those of a run that keeps the states, bit for bit."""
+    gen = np.random.default_rng(4)
+    y = 0.5 + 0.1 * gen.standard_normal((20, 24))
+    prior = GSMPrior.load().with_strength(0.5)
+    runs = []
+    for keep in (True, False):
+        m = GreyModel(y, variance=0.01, prior=prior, single_solves=1, relax=-0.5,
+                      reflect_scales=True, closing_mean=True)
+        runs.append(sampler.run(m, sweeps=3, burn_in=1, chains=3, seed=9, tally=True,
+                                keep_states=keep))
+    kept, freed = runs
+    assert len(kept.states) == 3 and freed.states == []
+    np.testing.assert_array_equal(kept.energies, freed.energies)
+    for name in ("s1", "s2", "sv"):
+        np.testing.assert_array_equal(getattr(kept.tally, name), getattr(freed.tally, name))
+
+
 def test_closing_means_keep_the_exact_posterior_mean_of_scale_enumeration():
     """The closing mean is one more state of the chain of scales, so it has the posterior
     mean as its expectation: checked on the 2 x 2 GSM posterior of

@@ -781,7 +781,7 @@ def _sure_risk(blocks, prior, *, seed, burn_in, samples, chains, tol, reflect=Fa
         m = GreyModel(yc, variance=vc, prior=prior, tol=tol, sample_tol=tol,
                       starts=starts[:chains], single_solves=burn_in, reflect_scales=reflect)
         run = sampler.run(m, sweeps=burn_in + samples, burn_in=burn_in, chains=chains,
-                          seed=seed + k, tally=True)
+                          seed=seed + k, tally=True, keep_states=False)
         tot += sure(yc, run.tally.mean64(), run.tally.var64(), vc) * yc.size
         mc += (run.tally.mc_variance() or 0.0) * yc.size
         n += yc.size
