@@ -753,6 +753,8 @@ def _describe(entry, outroot) -> str:
         bits.append(f"coupling {p['coupling']:.3g}")
     if "flip_rate" in p:
         bits.append(f"flip rate {p['flip_rate']:.3g}")
+    if isinstance(p.get("tile"), list):
+        bits.append(f"tiles of {p['tile'][0]} px")
     rhat = d.get("rhat")
     if isinstance(rhat, float):
         bits.append(f"R-hat {rhat:.3f}")

@@ -21,13 +21,22 @@ from .estimates import CleanResult
 from .grey import PRIORS
 from .schedules import make_schedule
 from .stacks import STACK_MODES
-from .tiles import MIN_TILE
+from .tiles import DEFAULT_TILE, MIN_TILE
 
 KINDS = ("auto", "binary", "grey")
 METHODS = ("auto", "map", "mpm", "mean")
 NOISES = ("auto", "flip", "gaussian", "poisson-gaussian")
 #: noise models each kind accepts ("gaussian" is the two-level data term for binary)
 KIND_NOISES = {"binary": ("auto", "flip", "gaussian"), "grey": ("auto", "gaussian", "poisson-gaussian")}
+#: :func:`clean_file` cleans a greyscale image (or stack) of more pixels than this in
+#: tiles of :data:`mrfclean.tiles.DEFAULT_TILE` when no tile size is set.  Untiled, the
+#: greyscale posterior holds about 210 bytes a pixel (880 MiB above the process for a
+#: 2048^2 float32 image, ``scripts/bench_scale.py``, stop 22; 3.9 GB peak for a 4096^2
+#: 16-bit scan from the command line), so 2^25 pixels (a 5793^2 scan) would need about
+#: 7 GB and a 10000^2 scan 20 GB: more than a workstation running two workers has.
+#: Tiled, memory is bounded by a band of tiles (0.4 GB for the 4096^2 scan).  Binary
+#: images need about 7 bytes a pixel untiled and are tiled only when asked.
+AUTO_TILE_PIXELS = 2**25
 
 
 @dataclass(frozen=True)
@@ -80,7 +89,9 @@ class Settings:
         pixel of state, results identical to an untiled run.  Greyscale: each
         tile sampled with a margin, memory bounded by a band of tiles, results
         equal to an untiled run within Monte-Carlo error (see
-        :mod:`mrfclean.tiles`).
+        :mod:`mrfclean.tiles`).  ``None``: untiled, except that
+        :func:`clean_file` tiles greyscale files of more than
+        :data:`AUTO_TILE_PIXELS` pixels.
     """
 
     kind: str = "auto"
@@ -243,6 +254,10 @@ def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps
                progress=False, output=None, tile_executor=None) -> FileOutcome:
     """Read ``path``, clean it, write the result into ``outdir`` (never over the input).
 
+    A greyscale file of more than :data:`AUTO_TILE_PIXELS` pixels is cleaned in
+    tiles of :data:`mrfclean.tiles.DEFAULT_TILE` when ``settings.tile`` is None
+    (its parameters then record ``tile``).
+
     Parameters
     ----------
     maps : bool or None
@@ -271,6 +286,12 @@ def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps
                                 output=output, tile_executor=tile_executor)
     loaded = io.read_image(path, colour=colour, max_pixels=max_pixels)
     kind = choose_kind(loaded.array, settings.kind)
+    if kind == "grey" and loaded.array.size > AUTO_TILE_PIXELS:
+        del loaded  # the tiled path reads the file again, band by band where it can
+        return clean_file(path, outdir, settings=settings.replace(kind=kind, tile=DEFAULT_TILE),
+                          rng=rng, maps=maps, colour=colour, overwrite=overwrite,
+                          max_pixels=max_pixels, progress=progress, output=output,
+                          tile_executor=tile_executor)
     out, map_paths = output_paths(path, outdir, kind=kind)
     if output is not None:
         out = Path(output)

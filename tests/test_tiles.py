@@ -24,7 +24,7 @@ from mrfclean.grey import clean_grey
 from mrfclean.diagnostics import ChainsDisagree
 from mrfclean.lattice import Grid
 from mrfclean.models.binary import BinaryModel, FlipNoise
-from mrfclean.tiles import (DEFAULT_GREY_HALO, RawField, TiledBinaryModel, band_bounds,
+from mrfclean.tiles import (DEFAULT_GREY_HALO, DEFAULT_TILE, RawField, TiledBinaryModel, band_bounds,
                             clean_binary_tiled, clean_grey_tiled)
 
 SEED = 99
@@ -369,3 +369,34 @@ def test_tiled_channel_stack_is_cleaned_plane_by_plane(tmp_path):
     s = Settings(sigma=20.0, strength=1.0, burn_in=1, samples=2, chains=1, tile=32)
     out = clean_file(p, tmp_path / "out", settings=s, rng=0)
     assert out.result.params["stack"] == "planes" and len(out.result.params["planes"]) == 2
+
+
+def test_large_grey_files_are_tiled_unless_a_tile_is_set(tmp_path, monkeypatch):
+    """``clean_file`` routes a greyscale file above ``AUTO_TILE_PIXELS`` to the tiled path
+    (untiled, the posterior needs about 210 bytes a pixel), records the tiling in the
+    parameters and on the command line's summary line, and leaves a given tile size,
+    smaller files and binary files as they were."""
+    import importlib
+
+    from mrfclean import batch
+
+    clean_mod = importlib.import_module("mrfclean.clean")  # the module, not the function
+
+    _, y = _grey_scan()
+    p = tmp_path / "scan.tif"
+    tifffile.imwrite(p, np.clip(np.rint(y[:64, :64]), 0, 255).astype(np.uint8))
+    b = tmp_path / "bilevel.tif"
+    tifffile.imwrite(b, (binary_blobs(64, rng=1) * 255).astype(np.uint8))
+    s = Settings(sigma=20.0, strength=1.0, burn_in=1, samples=2, chains=1)
+    small = clean_file(p, tmp_path / "small", settings=s, rng=0)
+    assert "tile" not in small.result.params
+    monkeypatch.setattr(clean_mod, "AUTO_TILE_PIXELS", 63 * 63)
+    auto = clean_file(p, tmp_path / "auto", settings=s, rng=0)
+    assert auto.result.params["tile"] == [DEFAULT_TILE, DEFAULT_TILE]
+    given = clean_file(p, tmp_path / "given", settings=s.replace(tile=32), rng=0)
+    assert given.result.params["tile"] == [32, 32]
+    binary = clean_file(b, tmp_path / "binary", settings=Settings(sweeps=4), rng=0)
+    assert binary.result.params.get("tile") is None
+    entry = {"input": str(p), "kind": "grey", "method": "mean", "seconds": 1.0,
+             "params": auto.result.params, "diagnostics": {}, "outputs": {"image": "scan.tif"}}
+    assert "tiles of 1024 px" in batch._describe(entry, tmp_path)
