@@ -387,10 +387,10 @@ class TiledBinaryModel(ChainModel):
             state[:, :, b0 + 1:b1 + 1, :] = v[:, :, 1:-1, :]
 
     def start(self, chain, seed):
+        self._last = None  # the previous chain's state is not held during this one
         state = np.zeros(self.grid.packed_shape, dtype=np.int8)
         if chain % 2 == 0:
             self._fill(state, lambda r0, r1: self.raw.start(self.rows.rows(r0, r1)))
-            self._last = None
             return state
         Z, _, W = self.grid.shape
         self._fill(state, lambda r0, r1: np.ones((Z, r1 - r0, W), np.int8))

@@ -799,11 +799,30 @@ def test_closing_mean_is_the_conditional_mean_of_the_last_scales():
     assert t.mc_variance() is not None  # four means in each chain
 
 
-@pytest.mark.slow
+def _states_alive_at_each_start(model, **run_kw):
+    """Run ``sampler.run(model, **run_kw)``; for each chain's start, whether the states of
+    the chains before it are still alive (weak references to their images)."""
+    import weakref
+
+    refs, alive = [], []
+    start = model.start
+
+    def tracked(chain, seed):
+        alive.append([r() is not None for r in refs])
+        state = start(chain, seed)
+        refs.append(weakref.ref(state.x if hasattr(state, "x") else state))
+        return state
+
+    model.start = tracked
+    run = sampler.run(model, **run_kw)
+    return run, alive
+
+
 def test_tallied_run_without_states_is_the_same_run():
     """``keep_states=False`` (what ``sample_posterior`` asks for, so that a run holds one
-    chain's state at a time instead of every chain's) changes no draw: the tally and the
-    energies equal those of a run that keeps the states, bit for bit."""
+    chain's state at a time instead of every chain's) changes no draw -- the tally and the
+    energies equal those of a run that keeps the states, bit for bit -- and each chain's
+    state is freed before the next chain starts (kept otherwise)."""
     gen = np.random.default_rng(4)
     y = 0.5 + 0.1 * gen.standard_normal((20, 24))
     prior = GSMPrior.load().with_strength(0.5)
@@ -818,8 +837,15 @@ def test_tallied_run_without_states_is_the_same_run():
     np.testing.assert_array_equal(kept.energies, freed.energies)
     for name in ("s1", "s2", "sv"):
         np.testing.assert_array_equal(getattr(kept.tally, name), getattr(freed.tally, name))
+    for keep, expected in ((False, [[], [False], [False, False]]),
+                           (True, [[], [True], [True, True]])):
+        m = GreyModel(y, variance=0.01, prior=prior, single_solves=1)
+        _, alive = _states_alive_at_each_start(m, sweeps=2, burn_in=1, chains=3, seed=9,
+                                               tally=True, keep_states=keep)
+        assert alive == expected
 
 
+@pytest.mark.slow
 def test_closing_means_keep_the_exact_posterior_mean_of_scale_enumeration():
     """The closing mean is one more state of the chain of scales, so it has the posterior
     mean as its expectation: checked on the 2 x 2 GSM posterior of
