@@ -39,7 +39,7 @@ from pathlib import Path, PurePosixPath
 import numpy as np
 
 from . import __version__, io
-from .clean import Settings, clean_file, output_paths
+from .clean import Settings, clean_file, output_paths, tiles_automatically
 from .diagnostics import ChainsDisagree
 from .manifest import (MANIFEST_NAME, Manifest, ManifestIndex, entry_key, file_hash, jsonable,
                        latest_by_image)
@@ -355,6 +355,16 @@ def _same_as_earlier_attempt(task: Task, outdir: Path, run):
         shutil.rmtree(scratch, ignore_errors=True)
 
 
+def _tiles_automatically(task: Task) -> bool:
+    """:func:`mrfclean.clean.tiles_automatically` for a task; False where the file has a
+    problem (its task then reports it)."""
+    try:
+        return tiles_automatically(task.path, task.settings, colour=task.colour,
+                                   max_pixels=task.max_pixels)
+    except io.InputError:
+        return False
+
+
 def clean_task(task: Task, tile_executor=None) -> dict:
     """Clean one image and say what happened; never raises for a problem with the image.
 
@@ -653,7 +663,8 @@ def _run_locked(inputs, collected, outroot, summary, settings, options, executor
     own_executor = executor is None
     task_fn = clean_task
     tile_executor = None
-    if executor is None and len(plan) == 1 and settings.tile is not None and settings.kind != "binary":
+    if executor is None and len(plan) == 1 and settings.kind != "binary" and (
+            settings.tile is not None or _tiles_automatically(plan[0][1])):
         # one tiled image: read and written here; greyscale tiles share the workers (binary
         # tiles are swept in order, so a binary image leaves the pool unused -- it starts lazily)
         tile_executor = make_executor(options.workers, options.threads,

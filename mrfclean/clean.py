@@ -28,8 +28,9 @@ METHODS = ("auto", "map", "mpm", "mean")
 NOISES = ("auto", "flip", "gaussian", "poisson-gaussian")
 #: noise models each kind accepts ("gaussian" is the two-level data term for binary)
 KIND_NOISES = {"binary": ("auto", "flip", "gaussian"), "grey": ("auto", "gaussian", "poisson-gaussian")}
-#: :func:`clean_file` cleans a greyscale image (or stack) of more pixels than this in
-#: tiles of :data:`mrfclean.tiles.DEFAULT_TILE` when no tile size is set.  Untiled, the
+#: :func:`clean_file` cleans a greyscale image (or stack) whose planes have more pixels
+#: than this in tiles of :data:`mrfclean.tiles.DEFAULT_TILE` when no tile size is set
+#: (see :func:`tiles_automatically`).  Untiled, the
 #: greyscale posterior holds about 210 bytes a pixel (880 MiB above the process for a
 #: 2048^2 float32 image, ``scripts/bench_scale.py``, stop 22; 3.9 GB peak for a 4096^2
 #: 16-bit scan from the command line), so 2^25 pixels (a 5793^2 scan) would need about
@@ -90,8 +91,8 @@ class Settings:
         tile sampled with a margin, memory bounded by a band of tiles, results
         equal to an untiled run within Monte-Carlo error (see
         :mod:`mrfclean.tiles`).  ``None``: untiled, except that
-        :func:`clean_file` tiles greyscale files of more than
-        :data:`AUTO_TILE_PIXELS` pixels.
+        :func:`clean_file` tiles greyscale files whose planes have more than
+        :data:`AUTO_TILE_PIXELS` pixels (:func:`tiles_automatically`).
     """
 
     kind: str = "auto"
@@ -249,14 +250,48 @@ def check_targets(path, targets, *, overwrite=False):
             raise io.OutputExists(path, f"output {target} already exists; choose another folder or allow overwriting")
 
 
+def tiles_automatically(path, settings: Settings, *, colour=None,
+                        max_pixels=io.DEFAULT_MAX_PIXELS) -> bool:
+    """Whether :func:`clean_file` cleans ``path`` in tiles although ``settings.tile`` is None.
+
+    True for a greyscale image whose planes have more than
+    :data:`AUTO_TILE_PIXELS` pixels (a stack is measured by its planes: tiles
+    span every plane, so a stack of small planes gains nothing from them).
+    The plane size comes from the file's header; with ``kind="auto"`` the
+    levels are then scanned band by band (an uncompressed TIFF is not read
+    whole for it).  False when the header cannot be read: reading the file
+    then says what is wrong.
+
+    Raises
+    ------
+    InputError
+        When the scan finds NaN or infinite values, or the file cannot be read.
+    """
+    if settings.tile is not None or settings.kind == "binary":
+        return False
+    plane = io.plane_shape(path)
+    if plane is None or plane[0] * plane[1] <= AUTO_TILE_PIXELS:
+        return False
+    if settings.kind == "grey":
+        return True
+    from .tiles import VolumeRows, scan_levels
+
+    loaded = io.open_image(path, colour=colour, max_pixels=max_pixels)
+    try:
+        return scan_levels(VolumeRows(loaded.array)) is None  # more than two levels
+    except ValueError as exc:
+        raise io.InputError(path, str(exc)) from None
+
+
 def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps=None,
                colour=None, overwrite=False, max_pixels=io.DEFAULT_MAX_PIXELS,
                progress=False, output=None, tile_executor=None) -> FileOutcome:
     """Read ``path``, clean it, write the result into ``outdir`` (never over the input).
 
-    A greyscale file of more than :data:`AUTO_TILE_PIXELS` pixels is cleaned in
-    tiles of :data:`mrfclean.tiles.DEFAULT_TILE` when ``settings.tile`` is None
-    (its parameters then record ``tile``).
+    A greyscale file whose planes have more than :data:`AUTO_TILE_PIXELS` pixels
+    is cleaned in tiles of :data:`mrfclean.tiles.DEFAULT_TILE` when
+    ``settings.tile`` is None (see :func:`tiles_automatically`; the parameters
+    then record ``tile``).
 
     Parameters
     ----------
@@ -278,6 +313,8 @@ def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps
     """
     t0 = time.perf_counter()
     settings = settings or Settings()
+    if tiles_automatically(path, settings, colour=colour, max_pixels=max_pixels):
+        settings = settings.replace(kind="grey", tile=DEFAULT_TILE)
     if settings.tile is not None:
         from .tiles import clean_file_tiled
 
@@ -286,12 +323,6 @@ def clean_file(path, outdir, *, settings: Settings | None = None, rng=None, maps
                                 output=output, tile_executor=tile_executor)
     loaded = io.read_image(path, colour=colour, max_pixels=max_pixels)
     kind = choose_kind(loaded.array, settings.kind)
-    if kind == "grey" and loaded.array.size > AUTO_TILE_PIXELS:
-        del loaded  # the tiled path reads the file again, band by band where it can
-        return clean_file(path, outdir, settings=settings.replace(kind=kind, tile=DEFAULT_TILE),
-                          rng=rng, maps=maps, colour=colour, overwrite=overwrite,
-                          max_pixels=max_pixels, progress=progress, output=output,
-                          tile_executor=tile_executor)
     out, map_paths = output_paths(path, outdir, kind=kind)
     if output is not None:
         out = Path(output)

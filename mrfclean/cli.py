@@ -144,8 +144,8 @@ def add_model_options(p):
                    help="clean in tiles of SIZE pixels, reading and writing uncompressed TIFF band "
                         "by band (memory bounded; binary: same result as untiled; grey: tiles "
                         "with a margin, equal to untiled within Monte-Carlo error; the tiles of a single "
-                        "grey image run on the workers); without it, grey images of more than 2^25 "
-                        "pixels are tiled at 1024")
+                        "grey image run on the workers); without it, grey images whose planes have more "
+                        "than 2^25 pixels are tiled at 1024")
     s = p.add_argument_group("sampler")
     s.add_argument("--schedule", choices=sorted(SCHEDULES),
                    help="annealing schedule for --estimate map (default geometric)")

@@ -75,6 +75,33 @@ def image_format(path) -> str:
     raise InputError(path, f"unsupported file type {suffix or '(none)'!r}; use TIFF or PNG")
 
 
+def plane_shape(path) -> tuple | None:
+    """``(H, W)`` of the image (of each plane of a stack) in ``path``, from the header alone.
+
+    ``None`` when the header cannot be read; :func:`read_image` then says what
+    is wrong.
+    """
+    try:
+        if image_format(path) == "tiff":
+            import tifffile
+
+            _quiet_tifffile()
+            with tifffile.TiffFile(path) as tif:
+                _, shape, is_colour = _tiff_layout(tif.series[0])
+            return tuple(int(v) for v in (shape[-3:-1] if is_colour else shape[-2:]))
+        from PIL import Image
+
+        old = Image.MAX_IMAGE_PIXELS
+        Image.MAX_IMAGE_PIXELS = None  # as _read_png: our own limit is checked when reading
+        try:
+            with Image.open(path) as im:
+                return int(im.size[1]), int(im.size[0])
+        finally:
+            Image.MAX_IMAGE_PIXELS = old
+    except Exception:
+        return None
+
+
 def read_image(path, *, colour: str | None = None, max_pixels: int = DEFAULT_MAX_PIXELS) -> Loaded:
     """Read one TIFF or PNG image and check that it can be cleaned.
 

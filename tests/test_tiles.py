@@ -8,6 +8,7 @@ equality bit for bit.  A naive tiling (tiles swept in place one after another)
 is run as a control to show that the comparison does detect seams.
 """
 
+import dataclasses
 import math
 import warnings
 
@@ -400,6 +401,27 @@ def test_large_grey_files_are_tiled_unless_a_tile_is_set(tmp_path, monkeypatch):
     entry = {"input": str(p), "kind": "grey", "method": "mean", "seconds": 1.0,
              "params": auto.result.params, "diagnostics": {}, "outputs": {"image": "scan.tif"}}
     assert "tiles of 1024 px" in batch._describe(entry, tmp_path)
+    # an exact output name and a PNG (plane size from Pillow's header)
+    png = tmp_path / "scan.png"
+    io.write_image(png, np.clip(np.rint(y[:64, :64]), 0, 255).astype(np.uint8))
+    named = clean_file(png, tmp_path / "named", settings=s, rng=0, output=tmp_path / "mine.png")
+    assert named.output == tmp_path / "mine.png" and named.result.params["tile"][0] == DEFAULT_TILE
+    # a stack is measured by its planes: two 50 x 50 channels (5000 pixels in all) stay whole
+    stack = tmp_path / "channels.tif"
+    tifffile.imwrite(stack, np.clip(np.rint(np.stack([y[:50, :50], y[50:100, 50:100]])), 0,
+                                    255).astype(np.uint8), imagej=True, metadata={"axes": "CYX"})
+    assert io.plane_shape(stack) == (50, 50)
+    whole = clean_file(stack, tmp_path / "stack", settings=s, rng=0)
+    assert "tile" not in whole.result.params
+    # the batch asks the same question of its one task, and a broken file is not tiled
+    broken = tmp_path / "broken.tif"
+    broken.write_bytes(b"not a tiff")
+    assert io.plane_shape(broken) is None
+    task = batch.Task(str(p), "scan.tif", str(tmp_path / "b"), s, 0, None, None,
+                      io.DEFAULT_MAX_PIXELS, False, None, None)
+    assert batch._tiles_automatically(task)
+    assert not batch._tiles_automatically(dataclasses.replace(task, path=str(broken)))
+    assert not batch._tiles_automatically(dataclasses.replace(task, settings=s.replace(tile=32)))
 
 
 def test_tiled_binary_run_frees_each_chains_state():
