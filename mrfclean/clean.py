@@ -35,8 +35,9 @@ KIND_NOISES = {"binary": ("auto", "flip", "gaussian"), "grey": ("auto", "gaussia
 #: 2048^2 float32 image, ``scripts/bench_scale.py``, stop 22; 3.9 GB peak for a 4096^2
 #: 16-bit scan from the command line), so 2^25 pixels (a 5793^2 scan) would need about
 #: 7 GB and a 10000^2 scan 20 GB: more than a workstation running two workers has.
-#: Tiled, memory is bounded by a band of tiles (0.4 GB for the 4096^2 scan).  Binary
-#: images need about 7 bytes a pixel untiled and are tiled only when asked.
+#: Tiled, memory is bounded by a band of tiles (a 6000^2 16-bit scan peaked at 0.65 GB
+#: with its tiles cleaned in the process).  Binary images need about 7 bytes a pixel
+#: untiled and are tiled only when asked.
 AUTO_TILE_PIXELS = 2**25
 
 
