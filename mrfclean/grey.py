@@ -660,6 +660,7 @@ def sample_block(y, setup: GreySetup, *, method="mean", schedule=None, sweeps=No
                       tol=tol, sample_tol=max(tol, DEFAULT_SAMPLE_TOL), grid=grid,
                       single_solves=burn_in, relax=FINAL_RELAX, reflect_scales=FINAL_REFLECT,
                       closing_mean=FINAL_CLOSING_MEAN)
+    del var_u  # the model keeps its inverse; not held through the chains
     diag = Diagnostics()
     params = dict(model.describe())
     samples = int(samples or DEFAULT_SAMPLES)
