@@ -799,26 +799,7 @@ def test_closing_mean_is_the_conditional_mean_of_the_last_scales():
     assert t.mc_variance() is not None  # four means in each chain
 
 
-def _states_alive_at_each_start(model, **run_kw):
-    """Run ``sampler.run(model, **run_kw)``; for each chain's start, whether the states of
-    the chains before it are still alive (weak references to their images)."""
-    import weakref
-
-    refs, alive = [], []
-    start = model.start
-
-    def tracked(chain, seed):
-        alive.append([r() is not None for r in refs])
-        state = start(chain, seed)
-        refs.append(weakref.ref(state.x if hasattr(state, "x") else state))
-        return state
-
-    model.start = tracked
-    run = sampler.run(model, **run_kw)
-    return run, alive
-
-
-def test_tallied_run_without_states_is_the_same_run():
+def test_tallied_run_without_states_is_the_same_run(states_alive):
     """``keep_states=False`` (what ``sample_posterior`` asks for, so that a run holds one
     chain's state at a time instead of every chain's) changes no draw -- the tally and the
     energies equal those of a run that keeps the states, bit for bit -- and each chain's
@@ -840,9 +821,8 @@ def test_tallied_run_without_states_is_the_same_run():
     for keep, expected in ((False, [[], [False], [False, False]]),
                            (True, [[], [True], [True, True]])):
         m = GreyModel(y, variance=0.01, prior=prior, single_solves=1)
-        _, alive = _states_alive_at_each_start(m, sweeps=2, burn_in=1, chains=3, seed=9,
-                                               tally=True, keep_states=keep)
-        assert alive == expected
+        assert states_alive(m, sweeps=2, burn_in=1, chains=3, seed=9, tally=True,
+                            keep_states=keep) == expected
 
 
 @pytest.mark.slow

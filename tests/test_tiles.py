@@ -424,23 +424,9 @@ def test_large_grey_files_are_tiled_unless_a_tile_is_set(tmp_path, monkeypatch):
     assert not batch._tiles_automatically(dataclasses.replace(task, settings=s.replace(tile=32)))
 
 
-def test_tiled_binary_run_frees_each_chains_state():
+def test_tiled_binary_run_frees_each_chains_state(states_alive):
     """With ``keep_states=False`` (posterior runs) a chain's spins are freed once the next
     chain has started: the tiled model drops the last state it caches for its energy."""
-    import weakref
-
-    from mrfclean import sampler
-
     _, tiled = _pair((1, 37, 29), (8, 8))
-    refs, alive = [], []
-    start = tiled.start
-
-    def tracked(chain, seed):
-        state = start(chain, seed)
-        alive.append([r() is not None for r in refs])
-        refs.append(weakref.ref(state))
-        return state
-
-    tiled.start = tracked
-    sampler.run(tiled, sweeps=2, chains=3, seed=SEED, keep_states=False)
-    assert alive == [[], [False], [False, False]]
+    assert states_alive(tiled, sweeps=2, chains=3, seed=SEED,
+                        keep_states=False) == [[], [False], [False, False]]
