@@ -124,6 +124,23 @@ def test_score_matching_gradient_matches_finite_differences():
     assert np.max(np.abs(num - g)) < 1e-6 * np.max(np.abs(g))
 
 
+def test_filter_field_score_matching_loss_against_brute_force():
+    """The trial script's score-matching loss for fields of filters (scripts/
+    trial_filter_field.py, stop 23) against a brute-force evaluation of Hyvärinen's
+    (2005) objective (finite differences of the log-density at every pixel) and its
+    gradient against finite differences, for the pairwise, 2 x 2 Haar and 3 x 3 DCT
+    filter sets; the script's --check exits 1 if any is off (tolerances justified there;
+    dropping the ||f||^2 factor makes the pairwise check fail)."""
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    script = Path(__file__).resolve().parents[1] / "scripts" / "trial_filter_field.py"
+    done = subprocess.run([sys.executable, str(script), "--check"], capture_output=True, text=True)
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert done.stdout.count(": ok") == 3
+
+
 def test_coordinate_search_reaches_the_optimum_scipy_finds():
     """Pattern search (Hooke & Jeeves 1961) on a smooth concave score with a
     coupled Hessian: it ends within its last step (1/64) of the maximiser
