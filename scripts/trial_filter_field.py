@@ -85,7 +85,7 @@ from scipy.optimize import minimize
 sys.path.insert(0, __file__.rsplit("/", 1)[0])
 from learn_grey_prior import training_images, tuning_cases  # noqa: E402
 
-from mrfclean.fit.grey import _clique_terms  # noqa: E402
+from mrfclean.fit.grey import _clique_gradient, _clique_terms  # noqa: E402
 from mrfclean.metrics import psnr  # noqa: E402
 
 PREC = 10 ** 0.5 * 4.0 ** np.arange(8)
@@ -155,7 +155,8 @@ def field_loss(theta, images, filters, groups, *, ridge=1e-4):
 
     so the score is ``g = sum_j F_j^T psi(F_j x)`` and the Laplacian
     ``sum_j ||f_j||^2 sum_q psi'``, with ``psi`` and ``psi'`` from
-    :func:`mrfclean.fit.grey._clique_terms`.
+    :func:`mrfclean.fit.grey._clique_terms` and the gradient from its
+    ``_clique_gradient`` (shared with the package's pairwise loss).
 
     Parameters
     ----------
@@ -188,13 +189,7 @@ def field_loss(theta, images, filters, groups, *, ridge=1e-4):
             cache.append((j, d, r, m1, m2, nf2))
         total += 0.5 * float((g * g).sum())
         for j, d, r, m1, m2, nf2 in cache:
-            B = respond(g, filters[j]).ravel()
-            dp = PREC[:, None] - m1[None, :]
-            dd = d * d
-            term = r * (nf2 * (-dp + dd[None, :] * (PREC[:, None] ** 2 - m2[None, :]
-                                                     - 2.0 * m1[None, :] * dp))
-                        - (d * B)[None, :] * dp)
-            grad[groups[j]] += term.sum(axis=1)
+            grad[groups[j]] += _clique_gradient(d, respond(g, filters[j]).ravel(), r, m1, m2, PREC, nf2)
         npix += x.size
     return total / npix + ridge * float((beta * beta).sum()), grad.ravel() / npix + 2 * ridge * theta
 

@@ -335,6 +335,24 @@ def _clique_terms(d, beta, prec):
     return psi, dpsi, r, m1, m2
 
 
+def _clique_gradient(d, B, r, m1, m2, prec, norm2):
+    """Gradient in the mixture log-weights ``beta`` of one clique set's share of the
+    score-matching loss, summed over its cliques (shape ``(K,)``).
+
+    ``d`` are the cliques' responses, ``B`` the loss's score ``g`` mapped through the
+    same response (``g[h] - g[t]`` for a difference), ``r, m1, m2`` from
+    :func:`_clique_terms`, and ``norm2`` the response's squared norm (2 for a
+    difference), which weights the Laplacian term:
+    ``d psi / d beta_l = -d r_l (prec_l - m1)`` and
+    ``d psi' / d beta_l = -r_l (prec_l - m1) + d^2 r_l (prec_l^2 - m2 - 2 m1 (prec_l - m1))``.
+    """
+    dp = prec[:, None] - m1[None, :]  # prec_l - m1
+    dd = d * d
+    term = r * (norm2 * (-dp + dd[None, :] * (prec[:, None] ** 2 - m2[None, :] - 2.0 * m1[None, :] * dp))
+                - (d * B)[None, :] * dp)
+    return term.sum(axis=1)
+
+
 def _pairs(shape, off):
     """Slices ``(tail, head)`` of a 2-D array for the cliques of in-plane offset ``off``."""
     di, dj = off
@@ -388,14 +406,7 @@ def score_matching_loss(theta, images, groups_offsets, prec, *, ridge=1e-4):
                 cache.append((gi, t, h, d, r, m1, m2))
         total += 0.5 * np.sum(g * g)
         for gi, t, h, d, r, m1, m2 in cache:
-            B = (g[h] - g[t]).ravel()
-            dp = prec[:, None] - m1[None, :]  # prec_l - m1
-            # d psi / d beta_l = -d r_l (prec_l - m1)
-            # d psi' / d beta_l = -r_l (prec_l - m1) + d^2 r_l (prec_l^2 - m2 - 2 m1 (prec_l - m1))
-            dd = d * d
-            term = r * (2.0 * (-dp + dd[None, :] * (prec[:, None] ** 2 - m2[None, :] - 2.0 * m1[None, :] * dp))
-                        - (d * B)[None, :] * dp)
-            grad[gi] += term.sum(axis=1)
+            grad[gi] += _clique_gradient(d, (g[h] - g[t]).ravel(), r, m1, m2, prec, 2.0)
         npix += x.size
     loss = total / npix + ridge * np.sum(beta * beta)
     return loss, grad.ravel() / npix + 2.0 * ridge * theta
