@@ -83,7 +83,7 @@ from scipy import ndimage
 from scipy.optimize import minimize
 
 sys.path.insert(0, __file__.rsplit("/", 1)[0])
-from learn_grey_prior import training_images, tuning_cases  # noqa: E402
+from learn_grey_prior import TRAINING, training_images, tuning_cases  # noqa: E402
 
 from mrfclean.fit.grey import _clique_gradient, _clique_terms  # noqa: E402
 from mrfclean.metrics import psnr  # noqa: E402
@@ -268,6 +268,7 @@ def posterior(y, sigma, filters, beta, strength, *, chains=2, burn_in=3, samples
     x_sum = np.zeros_like(y)
     x2_sum = np.zeros_like(y)
     n = 0
+    b = y * inv_var
     for c in range(chains):
         x = ndimage.gaussian_filter(y, (1.0, 1.4)[c % 2])
         mean = x.copy()
@@ -280,7 +281,6 @@ def posterior(y, sigma, filters, beta, strength, *, chains=2, burn_in=3, samples
                 k = (cdf < gen.random(r.size)[None, :] * cdf[-1]).sum(axis=0)
                 w[j] = (strength * PREC[np.minimum(k, PREC.size - 1)]).reshape(w[j].shape)
             dinv = 1.0 / (inv_var + sum(respond_t(w[j], filters[j] ** 2, y.shape) for j in range(J)))
-            b = y * inv_var
             pert = sum(respond_t(np.sqrt(w[j]) * gen.standard_normal(w[j].shape), filters[j], y.shape)
                        for j in range(J))
             # the image given the scales, solved as tightly as the mean: SURE reads its variance
@@ -312,15 +312,9 @@ def cases(which, every):
                 out.append((f"{name} s={s:g}", x, y.astype(np.float64), s))
         return out[::every]
     sig = (0.05, 0.1, 0.2)
-    names = training_names()
-    out = [(f"{names[i // 4]} s={sig[i % 4]:g}", x, y.astype(np.float64), sig[i % 4])
+    out = [(f"{TRAINING[i // 4]} s={sig[i % 4]:g}", x, y.astype(np.float64), sig[i % 4])
            for i, (x, y) in enumerate(tuning_cases(crop=384, seed=6)) if i % 4 != 3]
     return out[::every]
-
-
-def training_names():
-    from learn_grey_prior import TRAINING
-    return TRAINING
 
 
 def strength_scan(x, y, s, filters, beta, grid):
@@ -331,10 +325,10 @@ def strength_scan(x, y, s, filters, beta, grid):
         m, v = posterior(y, s, filters, beta, lam)
         sure = float(np.mean((y[INTERIOR] - m[INTERIOR]) ** 2) - s * s + 2 * np.mean(v[INTERIOR]))
         rows.append((lam, psnr(x[INTERIOR], m[INTERIOR], data_range=1.0), sure))
-        least = min(range(len(rows)), key=lambda i: rows[i][2])
-        if rows[-1][1] < max(r[1] for r in rows) - 0.5 and len(rows) - 1 - least >= 2 \
+        if len(rows) >= 3 and rows[-1][1] < max(r[1] for r in rows) - 0.5 \
                 and rows[-1][2] > rows[-2][2] > rows[-3][2]:
-            break  # past both optima
+            break  # past both optima: SURE rising twice in a row is past its least value
+
     def mark(r):  # at the grid's lower end, or its upper end when the scan reached it
         return (*r, bool(r[0] == grid[0] or (len(rows) == len(grid) and r[0] == grid[-1])))
 
@@ -362,12 +356,12 @@ def check():
                 tot += float((m + np.log(np.exp(lp - m).sum(axis=0))).sum())
             return tot
 
-        h, total = 3e-5, 0.0
+        h, total, mid = 3e-5, 0.0, logp(x)
         for i in range(x.size):
             e = np.zeros(x.size)
             e[i] = h
             e = e.reshape(x.shape)
-            up, mid, dn = logp(x + e), logp(x), logp(x - e)
+            up, dn = logp(x + e), logp(x - e)
             total += (up - 2 * mid + dn) / h**2 + 0.5 * ((up - dn) / (2 * h)) ** 2
         brute = total / x.size
         loss, grad = field_loss(theta, [x], F, groups, ridge=0.0)
