@@ -828,30 +828,11 @@ def _pick(lp, u):
 
 
 @njit(inline="always", cache=True)
-def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, draw, buf,
-                 grow, gnrow, scaled, reflect):
-    """Draw at T = 1 of the cliques ``(j, j + dj)``, ``j`` in ``range(lo, hi)``, on the 4^c ladder.
-
-    Returns their prior energy (scales summed out); with ``draw`` False only
-    the energy (``crow`` is not touched).  The running sums over the scales
-    are built for the whole row at once in ``buf`` (``K + 3`` rows of scratch),
-    one scale at a time, so those loops vectorise; each clique's arithmetic is
-    the same as one at a time.  With ``reflect``, each draw is the mirror image
-    of the clique's current component in ``crow`` (see :func:`_reflected`),
-    kept in ``buf``'s last row for the general path.  A clique whose sum is below
-    :data:`_LADDER_TINY` (all scales far in the tail) takes the general path
-    of :func:`_gsm_clique`.  With ``scaled``, each clique's squared difference
-    is multiplied by the mean of the prior scales ``grow[j]`` and
-    ``gnrow[j + dj]`` of its two pixels (see :func:`gsm_draw_components`).
-    """
-    K = am.shape[0]
-    lmax = la[0]
-    for c in range(K):
-        lmax = max(lmax, la[c])
-    g = -0.5 * lam * pr[0]
+def _pair_d2(xrow, nrow, dj, lo, hi, grow, gnrow, scaled, d2v):
+    """Squared differences ``(x[j + dj] - x[j])^2`` of the cliques ``j`` in ``range(lo, hi)``
+    into ``d2v[:hi - lo]``; with ``scaled``, times the mean of the prior scales ``grow[j]``
+    and ``gnrow[j + dj]`` of the clique's two pixels (see :func:`gsm_draw_components`)."""
     n = hi - lo
-    d2v = buf[0, :n]
-    ev = buf[K + 1, :n]
     xv = xrow[lo:hi]
     nv = nrow[lo + dj:hi + dj]
     for t in range(n):
@@ -862,6 +843,31 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
         gnv = gnrow[lo + dj:hi + dj]
         for t in range(n):
             d2v[t] *= 0.5 * (gv[t] + gnv[t])
+
+
+@njit(inline="always", cache=True)
+def _ladder_draw(n, am, la, pr, lam, key, base, cv, lp, draw, buf, reflect):
+    """Draw at T = 1 of ``n`` cliques of one row on the 4^c ladder.
+
+    Their squared responses (differences, or filter responses) are in
+    ``buf[0, :n]``; clique ``t`` draws with uniform counter ``base + t`` into
+    ``cv[t]``.  Returns their prior energy (scales summed out); with ``draw``
+    False only the energy (``cv`` is not touched).  The running sums over the
+    scales are built for the whole row at once in ``buf`` (``K + 3`` rows of
+    scratch), one scale at a time, so those loops vectorise; each clique's
+    arithmetic is the same as one at a time.  With ``reflect``, each draw is
+    the mirror image of the clique's current component in ``cv`` (see
+    :func:`_reflected`), kept in ``buf``'s last row for the general path.  A
+    clique whose sum is below :data:`_LADDER_TINY` (all scales far in the
+    tail) takes the general path of :func:`_gsm_clique`.
+    """
+    K = am.shape[0]
+    lmax = la[0]
+    for c in range(K):
+        lmax = max(lmax, la[c])
+    g = -0.5 * lam * pr[0]
+    d2v = buf[0, :n]
+    ev = buf[K + 1, :n]
     _exp_decay_row(g, d2v, ev, buf[K, :n].view(np.int64))  # buf[K]: free until the sums
     for c in range(K):  # buf[1 + c] = sum of the first c + 1 terms am[c'] e^(4^c')
         cur = buf[1 + c, :n]
@@ -883,13 +889,12 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
         # data-dependent exit); uniforms and counts in passes of their own, which
         # vectorise (the row of e^(4^c) terms is free for the uniforms by now)
         uv = buf[K + 1, :n]
-        cv = crow[lo:hi]
         if reflect:
             cold = buf[K + 2, :n]
             for t in range(n):
                 c = cv[t]
                 cold[t] = c
-                u = uniform(key, base + lo + t)
+                u = uniform(key, base + t)
                 if c < K:  # the mirror of the point drawn uniformly within c's share
                     below = buf[c, t] if c > 0 else 0.0
                     uv[t] = _mirror(below + u * (buf[1 + c, t] - below), tots[t])
@@ -897,7 +902,7 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
                     uv[t] = u * tots[t]
         else:
             for t in range(n):
-                uv[t] = uniform(key, base + lo + t) * tots[t]
+                uv[t] = uniform(key, base + t) * tots[t]
         for t in range(n):
             cv[t] = 0
         for q in range(K - 1):
@@ -919,9 +924,9 @@ def _ladder_draw(xrow, nrow, dj, lo, hi, am, la, pr, lam, key, base, crow, lp, d
             m, tot, c = _gsm_clique(la, pr, lam, d2v[t], 1.0, lp)
             acc -= m + np.log(tot)
             if draw:
-                u = uniform(key, base + lo + t)
+                u = uniform(key, base + t)
                 c = int(buf[K + 2, t]) if reflect else K
-                crow[lo + t] = _pick(lp, _reflected(lp, c, u, tot) if c < K else u * tot)
+                cv[t] = _pick(lp, _reflected(lp, c, u, tot) if c < K else u * tot)
     return acc - lmax * nfast - np.log(prod)
 
 
@@ -1000,9 +1005,10 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
             pr = prec[o]
             base = o * N + (z * H + i) * W
             if fast:
-                acc += _ladder_draw(xrow, nrow, dj, lo, hi, amp[o], la, pr, lam, key, base,
-                                    comp[o, z, i] if draw else nocomp, lp, draw, scratch,
-                                    grow, gnrow, scaled, reflect)
+                _pair_d2(xrow, nrow, dj, lo, hi, grow, gnrow, scaled, scratch[0])
+                acc += _ladder_draw(hi - lo, amp[o], la, pr, lam, key, base + lo,
+                                    comp[o, z, i, lo:hi] if draw else nocomp, lp, draw, scratch,
+                                    reflect)
                 continue
             for j in range(lo, hi):
                 d = nrow[j + dj] - xrow[j]
