@@ -930,6 +930,36 @@ def _ladder_draw(n, am, la, pr, lam, key, base, cv, lp, draw, buf, reflect):
     return acc - lmax * nfast - np.log(prod)
 
 
+@njit(inline="always", cache=True)
+def _one_clique(d2, ms, mode, la, pr, lam, it, temperature, key, ctr, crow, wrow, j, reflect, lp):
+    """The general path of one clique of squared response ``d2`` (times its prior scale ``ms``).
+
+    ``mode`` mean: its half-quadratic weight ``lam ms E[prec | d2]`` into ``wrow[j]``
+    (returns 0).  Draw: its component (uniform counter ``ctr``; reflected through its
+    conditional CDF from ``crow[j]`` with ``reflect``) into ``crow[j]``.  Draw and energy
+    return its prior energy at T = 1, the scales summed out.
+    """
+    K = la.shape[0]
+    if mode == _GSM_MEAN:
+        m, tot, c = _gsm_clique(la, pr, lam, d2, 1.0, lp)
+        num = 0.0
+        for c in range(K):
+            num += lp[c] * pr[c]
+        wrow[j] = lam * ms * num / tot
+        return 0.0
+    draw = mode == _GSM_DRAW
+    m, tot, c = _gsm_clique(la, pr, lam, d2, it if draw else 1.0, lp)
+    if draw:
+        if temperature > 0.0:
+            u = uniform(key, ctr)
+            c0 = crow[j]
+            c = _pick(lp, _reflected(lp, c0, u, tot) if reflect and c0 < K else u * tot)
+        crow[j] = c
+        if it != 1.0:  # the energy is untempered: redo the sums at T = 1
+            m, tot, c = _gsm_clique(la, pr, lam, d2, 1.0, lp)
+    return -(m + np.log(tot))
+
+
 @njit(parallel=True, cache=True)
 def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode, w, comp, rows,
               amp=_EMPTY2, gs=_EMPTY3, reflect=False):
@@ -963,6 +993,7 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
     draw = mode == _GSM_DRAW
     fast = mode != _GSM_MEAN and temperature == 1.0 and amp.shape[0] == n
     nocomp = np.zeros(0, np.uint8)
+    noweight = np.zeros(0)
     for k in prange(Z * H):
         z = k // H
         i = k - z * H
@@ -984,14 +1015,14 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
             lo, hi = _span(dj, W)
             if not (0 <= zf < Z and 0 <= i_f < H):
                 lo, hi = 0, 0
+            wrow = w[o, z, i] if mode == _GSM_MEAN else noweight
+            crow = comp[o, z, i] if draw else nocomp
             if mode == _GSM_MEAN:
-                wrow = w[o, z, i]
                 for j in range(0, lo):
                     wrow[j] = 0.0
                 for j in range(hi, W):
                     wrow[j] = 0.0
             elif draw:
-                crow = comp[o, z, i]
                 for j in range(0, lo):
                     crow[j] = NO_CLIQUE
                 for j in range(hi, W):
@@ -1007,32 +1038,13 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
             if fast:
                 _pair_d2(xrow, nrow, dj, lo, hi, grow, gnrow, scaled, scratch[0])
                 acc += _ladder_draw(hi - lo, amp[o], la, pr, lam, key, base + lo,
-                                    comp[o, z, i, lo:hi] if draw else nocomp, lp, draw, scratch,
-                                    reflect)
+                                    crow[lo:hi] if draw else nocomp, lp, draw, scratch, reflect)
                 continue
             for j in range(lo, hi):
                 d = nrow[j + dj] - xrow[j]
-                d2 = d * d
                 ms = 0.5 * (grow[j] + gnrow[j + dj]) if scaled else 1.0
-                d2 *= ms
-                if mode == _GSM_MEAN:
-                    m, tot, c = _gsm_clique(la, pr, lam, d2, 1.0, lp)
-                    num = 0.0
-                    for c in range(K):
-                        num += lp[c] * pr[c]
-                    wrow[j] = lam * ms * num / tot
-                    continue
-                m, tot, c = _gsm_clique(la, pr, lam, d2, it if draw else 1.0, lp)
-                if draw:
-                    if temperature > 0.0:
-                        u = uniform(key, base + j)
-                        c0 = crow[j]
-                        c = _pick(lp, _reflected(lp, c0, u, tot) if reflect and c0 < K
-                                  else u * tot)
-                    crow[j] = c
-                    if it != 1.0:  # the energy is untempered: redo the sums at T = 1
-                        m, tot, c = _gsm_clique(la, pr, lam, d2, 1.0, lp)
-                acc -= m + np.log(tot)
+                acc += _one_clique(d * d * ms, ms, mode, la, pr, lam, it, temperature, key,
+                                   base + j, crow, wrow, j, reflect, lp)
         rows[k] = acc
 
 
