@@ -21,7 +21,8 @@ simplest form, with everything else held equal:
   images (``scripts/learn_grey_prior.py``, never the benchmark's; 320^2
   crops halved, Gaussian noise 0.01, no 1/255 dequantisation), the loss
   generalised from :func:`mrfclean.fit.grey.score_matching_loss` to linear
-  filter responses ``r = f * x``: the Laplacian term of a filter carries
+  filter responses ``r = f * x`` (:func:`mrfclean.fit.grey.filter_score_matching_loss`,
+  first written here): the Laplacian term of a filter carries
   ``||f||^2`` where a difference carries 2.  ``--check`` tests the loss against
   a brute-force evaluation and its gradient against finite differences, for
   all three filter sets, and exits non-zero if either is off.
@@ -85,7 +86,9 @@ from scipy.optimize import minimize
 sys.path.insert(0, __file__.rsplit("/", 1)[0])
 from learn_grey_prior import TRAINING, training_images, tuning_cases  # noqa: E402
 
-from mrfclean.fit.grey import _clique_gradient, _clique_terms  # noqa: E402
+from mrfclean.fit.grey import filter_responses as respond  # noqa: E402
+from mrfclean.fit.grey import filter_responses_t as respond_t  # noqa: E402
+from mrfclean.fit.grey import filter_score_matching_loss  # noqa: E402
 from mrfclean.metrics import psnr  # noqa: E402
 
 PREC = 10 ** 0.5 * 4.0 ** np.arange(8)
@@ -124,74 +127,9 @@ def haar_filters():
     return np.array(out), [0, 0, 1]
 
 
-def respond(x, f):
-    """Responses of filter ``f`` at every position where it lies wholly inside ``x``."""
-    H, W = x.shape
-    out = np.zeros((H - 2, W - 2))
-    for a in range(3):
-        for b in range(3):
-            if f[a, b]:
-                out += f[a, b] * x[a:a + H - 2, b:b + W - 2]
-    return out
-
-
-def respond_t(r, f, shape):
-    """The transpose of :func:`respond`."""
-    H, W = shape
-    out = np.zeros(shape)
-    for a in range(3):
-        for b in range(3):
-            if f[a, b]:
-                out[a:a + H - 2, b:b + W - 2] += f[a, b] * r
-    return out
-
-
 def field_loss(theta, images, filters, groups, *, ridge=1e-4):
-    r"""Score-matching loss of a GSM filter field and its gradient (Hyvärinen 2005).
-
-    .. math:: J = \frac1N \sum_i \Big[\partial_i^2 \log p(x)
-              + \tfrac12 (\partial_i \log p(x))^2\Big],
-              \qquad \log p = \sum_j \sum_q \log \phi_{g(j)}((f_j * x)_q),
-
-    so the score is ``g = sum_j F_j^T psi(F_j x)`` and the Laplacian
-    ``sum_j ||f_j||^2 sum_q psi'``, with ``psi`` and ``psi'`` from
-    :func:`mrfclean.fit.grey._clique_terms` and the gradient from its
-    ``_clique_gradient`` (shared with the package's pairwise loss).
-
-    Parameters
-    ----------
-    theta : ndarray, shape (groups * 8,)
-        Log-weights of every group's mixture on :data:`PREC`.
-    images : list of 2-D arrays
-    filters : ndarray, shape (J, 3, 3)
-    groups : list of int
-        The mixture of each filter.
-    ridge : float
-        Small penalty fixing the log-weights' free additive constant.
-
-    Returns
-    -------
-    loss : float
-    grad : ndarray, shape like ``theta``
-    """
-    K = PREC.size
-    beta = theta.reshape(max(groups) + 1, K)
-    total, grad, npix = 0.0, np.zeros_like(beta), 0
-    for x in images:
-        g = np.zeros_like(x)
-        cache = []
-        for j, f in enumerate(filters):
-            d = respond(x, f).ravel()
-            psi, dpsi, r, m1, m2 = _clique_terms(d, beta[groups[j]], PREC)
-            nf2 = float((f * f).sum())
-            total += nf2 * dpsi.sum()
-            g += respond_t(psi.reshape(x.shape[0] - 2, x.shape[1] - 2), f, x.shape)
-            cache.append((j, d, r, m1, m2, nf2))
-        total += 0.5 * float((g * g).sum())
-        for j, d, r, m1, m2, nf2 in cache:
-            grad[groups[j]] += _clique_gradient(d, respond(g, filters[j]).ravel(), r, m1, m2, PREC, nf2)
-        npix += x.size
-    return total / npix + ridge * float((beta * beta).sum()), grad.ravel() / npix + 2 * ridge * theta
+    """:func:`mrfclean.fit.grey.filter_score_matching_loss` on :data:`PREC`."""
+    return filter_score_matching_loss(theta, images, list(filters), groups, PREC, ridge=ridge)
 
 
 def training_set(seed=0, noise=0.01):

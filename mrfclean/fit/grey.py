@@ -36,7 +36,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage, optimize
 
-from ..models.grey import NEIGHBOURHOODS, GSMPrior, PriorGroup
+from ..models.grey import BLOCK_FILTER_NAMES, NEIGHBOURHOODS, BlockGroup, GSMPrior, PriorGroup
 
 #: 0.6744897501960817 = Phi^-1(3/4): MAD / this is sigma for Gaussian data.
 MAD_TO_SIGMA = 0.6744897501960817
@@ -412,8 +412,95 @@ def score_matching_loss(theta, images, groups_offsets, prec, *, ridge=1e-4):
     return loss, grad.ravel() / npix + 2.0 * ridge * theta
 
 
+def filter_responses(x, f):
+    """Responses ``sum_ab f[a, b] x[i + a, j + b]`` of filter ``f`` wherever it lies wholly
+    inside the 2-D image ``x`` (shape ``(H - h + 1, W - w + 1)`` for an ``h x w`` filter)."""
+    H, W = x.shape
+    h, w = f.shape
+    out = np.zeros((H - h + 1, W - w + 1))
+    for a in range(h):
+        for b in range(w):
+            if f[a, b]:
+                out += f[a, b] * x[a:a + H - h + 1, b:b + W - w + 1]
+    return out
+
+
+def filter_responses_t(r, f, shape):
+    """The transpose of :func:`filter_responses`: ``r`` spread back onto an image of ``shape``."""
+    H, W = shape
+    h, w = f.shape
+    out = np.zeros(shape)
+    for a in range(h):
+        for b in range(w):
+            if f[a, b]:
+                out[a:a + H - h + 1, b:b + W - w + 1] += f[a, b] * r
+    return out
+
+
+def filter_score_matching_loss(theta, images, filters, groups, prec, *, ridge=1e-4):
+    r"""Score-matching objective of a GSM field of linear filters and its gradient.
+
+    .. math:: J = \frac1N \sum_i \Big[\partial_i^2 \log p(x)
+              + \tfrac12 (\partial_i \log p(x))^2\Big],
+              \qquad \log p = \sum_j \sum_q \log \phi_{g(j)}((f_j * x)_q),
+
+    (Hyvärinen 2005): the score is ``g = sum_j F_j^T psi(F_j x)`` and the Laplacian
+    ``sum_j ||f_j||^2 sum_q psi'``, where a neighbour difference (the pairwise
+    :func:`score_matching_loss`) has ``||f||^2 = 2``.  ``psi`` and ``psi'`` come from
+    :func:`_clique_terms` and the gradient from :func:`_clique_gradient`, as in the
+    pairwise loss.
+
+    Parameters
+    ----------
+    theta : ndarray, shape (G * K,)
+        Log-weights of every group's mixture on ``prec``.
+    images : list of 2-D arrays
+    filters : sequence of 2-D arrays
+        Filters of any (small) shape; responses are taken where a filter lies
+        wholly inside an image (:func:`filter_responses`).
+    groups : list of int
+        The mixture (group) of each filter.
+    prec : ndarray, shape (K,)
+    ridge : float
+        Small penalty fixing the log-weights' free additive constant.
+
+    Returns
+    -------
+    loss : float
+    grad : ndarray, shape like ``theta``
+    """
+    K = prec.size
+    beta = theta.reshape(max(groups) + 1, K)
+    total, grad, npix = 0.0, np.zeros_like(beta), 0
+    for x in images:
+        g = np.zeros_like(x)
+        cache = []
+        for j, f in enumerate(filters):
+            resp = filter_responses(x, f)
+            d = resp.ravel()
+            psi, dpsi, r, m1, m2 = _clique_terms(d, beta[groups[j]], prec)
+            nf2 = float((f * f).sum())
+            total += nf2 * dpsi.sum()
+            g += filter_responses_t(psi.reshape(resp.shape), f, x.shape)
+            cache.append((j, d, r, m1, m2, nf2))
+        total += 0.5 * float((g * g).sum())
+        for j, d, r, m1, m2, nf2 in cache:
+            grad[groups[j]] += _clique_gradient(d, filter_responses(g, filters[j]).ravel(),
+                                                r, m1, m2, prec, nf2)
+        npix += x.size
+    return total / npix + ridge * float((beta * beta).sum()), grad.ravel() / npix + 2 * ridge * theta
+
+
+#: The 2 x 2 block filters of :data:`mrfclean.models.grey.BLOCK_FILTER_NAMES`, unit norm.
+BLOCK_FILTERS = np.array([[[1, -1], [1, -1]], [[1, 1], [-1, -1]], [[1, -1], [-1, 1]]]) / 2.0
+#: Block groups sharing a potential: the row and column differences (one shape turned
+#: by 90 degrees), and the checker.
+BLOCK_GROUPS = (("edges", ("columns", "rows")), ("checker", ("checker",)))
+
+
 def learn_prior(images, *, neighbourhood="8", precisions=None, iterations=300,
-                dequantise=1.0 / 255.0, smoothing=0.0, seed=0, progress=None) -> GSMPrior:
+                dequantise=1.0 / 255.0, smoothing=0.0, seed=0, progress=None,
+                blocks=False) -> GSMPrior:
     """Learn the mixture weights of a GSM-MRF prior by score matching on clean images.
 
     Offsets are grouped by symmetry (horizontal and vertical share a potential,
@@ -434,6 +521,9 @@ def learn_prior(images, *, neighbourhood="8", precisions=None, iterations=300,
     neighbourhood : {"4", "8", "12", "20"}
     precisions : array_like, optional
         Precision grid ``pi_c``; default ``10 ** linspace(0.5, 5.3, 9)``.
+    blocks : bool
+        Learn a prior on the 2 x 2 block filters instead (:data:`BLOCK_GROUPS`, with
+        :func:`filter_score_matching_loss`); ``neighbourhood`` is then unused.
 
     References
     ----------
@@ -448,18 +538,26 @@ def learn_prior(images, *, neighbourhood="8", precisions=None, iterations=300,
     gen = np.random.default_rng(seed)
     data = [np.asarray(x, dtype=np.float64) + dequantise * (gen.random(np.shape(x)) - 0.5)
             + smoothing * gen.standard_normal(np.shape(x)) for x in images]
+    if blocks:
+        groups = BLOCK_GROUPS
+        names = list(BLOCK_FILTER_NAMES)
+        which = [next(k for k, (_, fs) in enumerate(groups) if n in fs) for n in names]
+        loss, args = filter_score_matching_loss, (data, list(BLOCK_FILTERS), which, prec)
+    else:
+        loss, args = score_matching_loss, (data, [g[1] for g in groups], prec)
     theta0 = np.zeros(len(groups) * prec.size)
-    res = optimize.minimize(score_matching_loss, theta0, args=(data, [g[1] for g in groups], prec),
-                            jac=True, method="L-BFGS-B", options={"maxiter": iterations},
-                            callback=progress)
+    res = optimize.minimize(loss, theta0, args=args, jac=True, method="L-BFGS-B",
+                            options={"maxiter": iterations}, callback=progress)
     beta = res.x.reshape(len(groups), prec.size)
     beta = beta - beta.max(axis=1, keepdims=True)
-    pg = tuple(PriorGroup(name, tuple(o), tuple(float(v) for v in b), tuple(float(p) for p in prec))
-               for (name, o), b in zip(groups, beta))
-    meta = {"source": "score matching (Hyvarinen 2005)", "neighbourhood": str(neighbourhood),
+    made = tuple((BlockGroup if blocks else PriorGroup)(name, tuple(o), tuple(float(v) for v in b),
+                                                        tuple(float(p) for p in prec))
+                 for (name, o), b in zip(groups, beta))
+    meta = {"source": "score matching (Hyvarinen 2005)",
+            "neighbourhood": "2x2 blocks" if blocks else str(neighbourhood),
             "loss": float(res.fun), "iterations": int(res.nit), "units": "intensity range [0, 1]",
             "dequantise": float(dequantise), "smoothing": float(smoothing)}
-    return GSMPrior(pg, meta=meta)
+    return GSMPrior((), meta=meta, blocks=made) if blocks else GSMPrior(made, meta=meta)
 
 
 def coordinate_search(score, x0, steps=(1.0, 0.5, 0.25), *, min_gain=0.0, max_rounds=6,
