@@ -496,6 +496,7 @@ def count_mismatch(P, T, W, q):
 
 _GREY_NOISE_SALT = np.uint64(0x6A09E667F3BCC909)
 _GREY_START_SALT = np.uint64(0xBB67AE8584CAA73B)
+_GREY_BLOCK_SALT = np.uint64(0xA54FF53A5F1D36F1)
 
 
 @njit(cache=True)
@@ -1211,6 +1212,250 @@ def gsm_prior_energy(x, offsets, logamp, prec, strength, scale=None):
               _EMPTY4, _EMPTY4U, rows, _ladder_amplitudes(logamp, prec),
               _EMPTY3 if scale is None else scale)
     return _ordered_sum(rows)
+
+
+# ---------------------------------------------------------------------------------------
+# 2 x 2 block filters
+# ---------------------------------------------------------------------------------------
+#: Filters of a 2 x 2 block ``[[a, b], [c, d]]`` (top-left corner at pixel ``(i, j)``):
+#: the non-constant Haar filters, unit norm, ``h = (a - b + c - d) / 2`` (across columns),
+#: ``v = (a + b - c - d) / 2`` (across rows), ``m = (a - b - c + d) / 2`` (mixed).
+BLOCK_FILTERS = 3
+#: Offsets of the pair weights a field of block filters contributes to ``Q``, in this order.
+BLOCK_OFFSETS = np.array([(0, 0, 1), (0, 1, 0), (0, 1, 1), (0, 1, -1)], np.int64)
+
+
+@njit(inline="always", cache=True)
+def _block_response(top, bot, f, n, out):
+    """Responses of block filter ``f`` of the blocks ``(i, j)``, ``j < n``, into ``out[:n]``
+    (``top`` and ``bot``: rows ``i`` and ``i + 1``)."""
+    a = top[0:n]
+    b = top[1:n + 1]
+    c = bot[0:n]
+    d = bot[1:n + 1]
+    o = out[:n]
+    if f == 0:
+        for t in range(n):
+            o[t] = 0.5 * ((a[t] + c[t]) - (b[t] + d[t]))
+    elif f == 1:
+        for t in range(n):
+            o[t] = 0.5 * ((a[t] + b[t]) - (c[t] + d[t]))
+    else:
+        for t in range(n):
+            o[t] = 0.5 * ((a[t] + d[t]) - (b[t] + c[t]))
+
+
+@njit(parallel=True, cache=True)
+def _block_rows(x, logamp, prec, strength, temperature, key, mode, w, comp, rows, amp, gs,
+                reflect):
+    """The body of :func:`_gsm_rows` for the block filters (``logamp``, ``prec``: one row
+    per filter; ``w`` and ``comp`` of shape ``(3, Z, H, W)``, block ``(i, j)`` at its
+    top-left corner, :data:`NO_CLIQUE` / 0 where no block starts).  ``rows`` receives each
+    row's prior energy; no data term.  A block's prior scale (with ``gs``) is the mean of
+    its four pixels'."""
+    Z, H, W = x.shape
+    scaled = gs.shape[0] > 0
+    K = logamp.shape[1]
+    N = Z * H * W
+    it = 1.0 / temperature if temperature > 0.0 else 1.0
+    draw = mode == _GSM_DRAW
+    fast = mode != _GSM_MEAN and temperature == 1.0 and amp.shape[0] == BLOCK_FILTERS
+    nocomp = np.zeros(0, np.uint8)
+    noweight = np.zeros(0)
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        n = W - 1 if i < H - 1 else 0
+        lp = np.empty(K)
+        scratch = np.empty((K + 3, W))
+        ms_row = np.ones(max(n, 0))
+        if scaled and n > 0:
+            g0 = gs[z, i]
+            g1 = gs[z, i + 1]
+            for t in range(n):
+                ms_row[t] = 0.25 * ((g0[t] + g0[t + 1]) + (g1[t] + g1[t + 1]))
+        acc = 0.0
+        for f in range(BLOCK_FILTERS):
+            wrow = w[f, z, i] if mode == _GSM_MEAN else noweight
+            crow = comp[f, z, i] if draw else nocomp
+            if mode == _GSM_MEAN:
+                for j in range(max(n, 0), W):
+                    wrow[j] = 0.0
+            elif draw:
+                for j in range(max(n, 0), W):
+                    crow[j] = NO_CLIQUE
+            if n <= 0:
+                continue
+            la = logamp[f]
+            pr = prec[f]
+            lam = strength[f]
+            base = f * N + (z * H + i) * W
+            d2v = scratch[0]
+            _block_response(x[z, i], x[z, i + 1], f, n, d2v)
+            for t in range(n):
+                d2v[t] = d2v[t] * d2v[t] * ms_row[t]
+            if fast:
+                acc += _ladder_draw(n, amp[f], la, pr, lam, key, base,
+                                    crow[0:n] if draw else nocomp, lp, draw, scratch, reflect)
+                continue
+            for j in range(n):
+                acc += _one_clique(d2v[j], ms_row[j], mode, la, pr, lam, it, temperature, key,
+                                   base + j, crow, wrow, j, reflect, lp)
+        rows[k] = acc
+
+
+@njit(parallel=True, cache=True)
+def _block_weights(comp, prec, strength, gs, bw):
+    """``bw[f, p] = strength[f] prec[f, comp[f, p]]`` (times the block's mean prior scale
+    with ``gs``; 0 where no block starts)."""
+    F, Z, H, W = comp.shape
+    scaled = gs.shape[0] > 0
+    for k in prange(F * Z * H):
+        f, z, i = _plane_row(k, Z, H)
+        crow = comp[f, z, i]
+        brow = bw[f, z, i]
+        lam = strength[f]
+        for j in range(W):
+            c = crow[j]
+            brow[j] = 0.0 if c == NO_CLIQUE else lam * prec[f, c]
+        if scaled and i < H - 1:
+            g0 = gs[z, i]
+            g1 = gs[z, i + 1]
+            for j in range(W - 1):
+                brow[j] *= 0.25 * ((g0[j] + g0[j + 1]) + (g1[j] + g1[j + 1]))
+
+
+@njit(parallel=True, cache=True)
+def _block_pairs(bw, w4):
+    """Pair weights (offsets :data:`BLOCK_OFFSETS`) of the blocks' precision.
+
+    A zero-sum filter ``f`` has ``f f^T = sum_{a<b} (-f_a f_b)(e_a - e_b)(e_a - e_b)^T``
+    (its rows sum to zero), so the block field's precision ``sum w_h h h^T + w_v v v^T +
+    w_m m m^T`` is a pairwise one: in each block the two row pairs weigh
+    ``(w_h - w_v + w_m) / 4``, the two column pairs ``(w_v - w_h + w_m) / 4`` and the two
+    diagonals ``(w_h + w_v - w_m) / 4`` (some may be negative; the sum stays positive
+    semi-definite).  Row ``(z, i)`` of every pair set gathers from the blocks of rows
+    ``i - 1`` and ``i``.
+    """
+    F, Z, H, W = bw.shape
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        for o in range(4):
+            row = w4[o, z, i]
+            for j in range(W):
+                row[j] = 0.0
+        h0 = bw[0, z, i]
+        v0 = bw[1, z, i]
+        m0 = bw[2, z, i]
+        r0 = w4[0, z, i]
+        r1 = w4[1, z, i]
+        r2 = w4[2, z, i]
+        r3 = w4[3, z, i]
+        if i < H - 1:  # the blocks of row i: top row pair, both column pairs, both diagonals
+            for j in range(W - 1):
+                r0[j] += 0.25 * ((h0[j] - v0[j]) + m0[j])
+                b = 0.25 * ((v0[j] - h0[j]) + m0[j])
+                r1[j] += b
+                r1[j + 1] += b
+                c = 0.25 * ((h0[j] + v0[j]) - m0[j])
+                r2[j] = c
+                r3[j + 1] = c
+        if i > 0:  # the blocks of row i - 1: their bottom row pair
+            h1 = bw[0, z, i - 1]
+            v1 = bw[1, z, i - 1]
+            m1 = bw[2, z, i - 1]
+            for j in range(W - 1):
+                r0[j] += 0.25 * ((h1[j] - v1[j]) + m1[j])
+
+
+def block_draw_components(x, logamp, prec, strength, temperature, key, comp, scale=None,
+                          reflect=False):
+    """Draw every block filter's scale given the image (as :func:`gsm_draw_components`, for
+    the filters of :data:`BLOCK_FILTERS`); return the blocks' prior energy at T = 1."""
+    rows = np.empty(x.shape[0] * x.shape[1])
+    amp = _ladder_amplitudes(logamp, prec) if float(temperature) == 1.0 else _EMPTY2
+    _block_rows(x, logamp, prec, strength, float(temperature), np.uint64(key), _GSM_DRAW,
+                _EMPTY4, comp, rows, amp, _EMPTY3 if scale is None else scale,
+                bool(reflect) and float(temperature) > 0.0)
+    return _ordered_sum(rows)
+
+
+def block_expand(comp, prec, strength, bw, w4, scale=None):
+    """Filter weights ``bw`` of the drawn components and the pair weights ``w4`` they make
+    (offsets :data:`BLOCK_OFFSETS`, see :func:`_block_pairs`)."""
+    _block_weights(comp, prec, strength, _EMPTY3 if scale is None else scale, bw)
+    _block_pairs(bw, w4)
+
+
+def block_mean_weights(x, logamp, prec, strength, bw, w4, scale=None):
+    """Half-quadratic filter weights ``strength[f] E[prec | r]`` into ``bw`` and their pair
+    weights into ``w4`` (as :func:`gsm_mean_weights`)."""
+    rows = np.empty(x.shape[0] * x.shape[1])
+    _block_rows(x, logamp, prec, strength, 1.0, np.uint64(0), _GSM_MEAN, bw, _EMPTY4U, rows,
+                _EMPTY2, _EMPTY3 if scale is None else scale, False)
+    _block_pairs(bw, w4)
+
+
+def block_prior_energy(x, logamp, prec, strength, scale=None):
+    """``-sum_blocks sum_f log sum_c exp(logamp[f, c] - strength[f] prec[f, c] m r_f^2 / 2)``."""
+    rows = np.empty(x.shape[0] * x.shape[1])
+    _block_rows(x, logamp, prec, strength, 1.0, np.uint64(0), _GSM_ENERGY, _EMPTY4, _EMPTY4U,
+                rows, _ladder_amplitudes(logamp, prec), _EMPTY3 if scale is None else scale,
+                False)
+    return _ordered_sum(rows)
+
+
+@njit(parallel=True, cache=True)
+def _block_normals(bw, key, first, buf):
+    """``buf[f, p] = sqrt(bw[f, p]) e[f, p]`` (counter ``first + f N + p``; 0 where no block starts)."""
+    F, Z, H, W = bw.shape
+    N = Z * H * W
+    for k in prange(F * Z * H):
+        f, z, i = _plane_row(k, Z, H)
+        row = buf[f, z, i]
+        hi = W - 1 if i < H - 1 else 0
+        for j in range(hi, W):
+            row[j] = 0.0
+        fill_normals(key, first + f * N + (z * H + i) * W, row, 0, hi)
+        wrow = bw[f, z, i]
+        for j in range(hi):
+            row[j] *= np.sqrt(wrow[j])
+
+
+@njit(parallel=True, cache=True)
+def _gather_blocks(buf, scale, out):
+    """``out += scale sum_blocks (s_h h + s_v v + s_m m)`` for the scaled normals ``s`` in ``buf``."""
+    F, Z, H, W = buf.shape
+    for k in prange(Z * H):
+        z = k // H
+        i = k - z * H
+        orow = out[z, i]
+        sh = buf[0, z, i]
+        sv = buf[1, z, i]
+        sm = buf[2, z, i]
+        for j in range(W):  # pixel a of block (i, j), b of block (i, j - 1)
+            e = (sh[j] + sv[j]) + sm[j]
+            if j > 0:
+                e += (sv[j - 1] - sh[j - 1]) - sm[j - 1]
+            orow[j] += 0.5 * scale * e
+        if i > 0:  # pixel c of block (i - 1, j), d of block (i - 1, j - 1)
+            th = buf[0, z, i - 1]
+            tv = buf[1, z, i - 1]
+            tm = buf[2, z, i - 1]
+            for j in range(W):
+                e = (th[j] - tv[j]) - tm[j]
+                if j > 0:
+                    e += (tm[j - 1] - th[j - 1]) - tv[j - 1]
+                orow[j] += 0.5 * scale * e
+
+
+def block_perturbation(bw, key, first, scale, out, buf):
+    """``out += scale sum_f F_f^T diag(bw_f)^(1/2) e_f``: the block field's share of the
+    perturbation of :func:`gmrf_perturbation` (covariance ``scale^2`` times its precision),
+    normals at counters ``first + f N + p``."""
+    _block_normals(bw, np.uint64(key), int(first), buf)
+    _gather_blocks(buf, float(scale), out)
 
 
 @njit(parallel=True, cache=True)

@@ -23,9 +23,14 @@ Two stages, both on clean images that scikit-image ships, converted to grey in
    SURE cannot judge the curvature term that smoother images need; see
    DEVELOPERS.md, stop 15).
 
+``--blocks`` fits, by the same score matching, a prior on the 2 x 2 block
+filters instead of neighbour differences (``grey_prior_blocks.json``, an
+opt-in prior; DEVELOPERS.md, stop 24).
+
 Example
 -------
     python scripts/learn_grey_prior.py --out mrfclean/data/grey_prior.json
+    python scripts/learn_grey_prior.py --blocks --out mrfclean/data/grey_prior_blocks.json
     python scripts/learn_grey_prior.py --tune --out mrfclean/data/grey_prior_tuned.json
 """
 
@@ -130,6 +135,8 @@ def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0],
                                 epilog="example: python scripts/learn_grey_prior.py --neighbourhood 8")
     p.add_argument("--neighbourhood", default="8", choices=["4", "8", "12", "20"])
+    p.add_argument("--blocks", action="store_true",
+                   help="learn the 2 x 2 block-filter prior (grey_prior_blocks.json) instead")
     p.add_argument("--crop", type=int, default=160)
     p.add_argument("--iterations", type=int, default=300)
     p.add_argument("--seed", type=int, default=0)
@@ -158,7 +165,8 @@ def main(argv=None) -> int:
     t0 = time.perf_counter()
     prec = 10 ** 0.5 * args.ratio ** np.arange(args.scales)
     prior = learn_prior(imgs, neighbourhood=args.neighbourhood, iterations=args.iterations,
-                        seed=args.seed, precisions=prec, smoothing=args.smoothing)
+                        seed=args.seed, precisions=prec, smoothing=args.smoothing,
+                        blocks=args.blocks)
     d = prior.to_dict()
     if args.tune:
         prior, record = tune(prior, tuning_cases(crop=args.tune_crop, seed=args.tune_seed),

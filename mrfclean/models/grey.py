@@ -28,6 +28,15 @@ stacks the in-plane second differences :math:`x_p - 2 x_{p+e} + x_{p+2e}` along
 rows and columns in :math:`C`: a quadratic prior of the kind used for smooth
 surfaces (Rue & Held 2005, ch. 3), which favours smooth ramps over flat steps.
 
+A prior may instead (or as well) put its potentials on the responses
+:math:`r = f \cdot x_B` of the three non-constant 2 x 2 Haar filters at every
+2 x 2 block :math:`B` of a plane (``GSMPrior.blocks``): cliques of four pixels,
+as in the fields of experts of Roth & Black (2009), sampled with the same
+auxiliary variables (Schmidt, Gao & Roth 2010).  Each filter sums to zero, so
+:math:`f f^\top = \sum_{a<b} (-f_a f_b)(e_a - e_b)(e_a - e_b)^\top` and given the
+scales the blocks' precision is a pairwise one on the 8-neighbourhood (with
+weights of either sign): the solver's operator is unchanged.
+
 Under signal-dependent noise the prior can act on the noise-stabilised image
 (``GSMPrior.noise_ref`` :math:`= r > 0`): clique :math:`(p, q)` then has
 precisions :math:`\lambda_o \pi_c\, r (v_p^{-1} + v_q^{-1}) / 2` and the triple
@@ -72,6 +81,8 @@ References
    negative-binomial data", Biometrika 35 (1948) 246-254.
 .. [7] M. Makitalo and A. Foi, "Optimal inversion of the generalized Anscombe
    transformation for Poisson-Gaussian noise", IEEE TIP 22 (2013) 91-103.
+.. [8] S. Roth and M. J. Black, "Fields of experts", International Journal of
+   Computer Vision 82 (2009) 205-229.
 """
 
 from __future__ import annotations
@@ -103,6 +114,10 @@ PRIOR_FILE = "grey_prior.json"
 #: (scripts/learn_grey_prior.py --tune); the cleaner uses it for images no
 #: smoother than those (see mrfclean.grey.grey_setup).
 TUNED_PRIOR_FILE = "grey_prior_tuned.json"
+#: A score-matching fit of potentials on the 2 x 2 block filters instead of neighbour
+#: differences (scripts/learn_grey_prior.py --blocks): opt-in (``prior="blocks"``) while
+#: it is measured against the pairwise priors (DEVELOPERS.md, stop 24).
+BLOCK_PRIOR_FILE = "grey_prior_blocks.json"
 #: Conjugate gradients run in float32 when both tolerances are at least this
 #: (float32 resolves 6e-8, so the recursion's rounding stays far below them);
 #: tighter solves, as in the exact-posterior tests, run in float64.
@@ -135,6 +150,26 @@ class PriorGroup:
             raise ValueError("log-amplitudes must be finite")
 
 
+#: Names of the 2 x 2 block filters, in the kernels' order (:data:`mrfclean.kernels.BLOCK_FILTERS`):
+#: the block's left column less its right, its top row less its bottom, and the checker.
+BLOCK_FILTER_NAMES = ("columns", "rows", "checker")
+
+
+@dataclass(frozen=True)
+class BlockGroup:
+    """Block filters (names from :data:`BLOCK_FILTER_NAMES`) sharing one potential."""
+
+    name: str
+    filters: tuple
+    logamp: tuple
+    prec: tuple
+
+    def __post_init__(self):
+        PriorGroup.__post_init__(self)
+        if not self.filters or any(f not in BLOCK_FILTER_NAMES for f in self.filters):
+            raise ValueError(f"block filters are named from {BLOCK_FILTER_NAMES}, got {self.filters!r}")
+
+
 @dataclass(frozen=True)
 class GSMPrior:
     """Gaussian-scale-mixture MRF prior over several offsets.
@@ -143,6 +178,14 @@ class GSMPrior:
     ----------
     groups : tuple of PriorGroup
         In-plane groups; offsets are ``(di, dj)`` pairs.
+    blocks : tuple of BlockGroup
+        Potentials on the responses of the 2 x 2 block filters at every block of
+        the plane (empty: none).  Together they must cover the three filters of
+        :data:`BLOCK_FILTER_NAMES` once each.  A block filter ``f`` is a clique of
+        four pixels with response ``r = f . x``; its potential is a Gaussian scale
+        mixture of ``r`` as above, so given the scales the prior stays a Gaussian
+        MRF (a field of experts in the sense of Roth & Black 2009, sampled as in
+        Schmidt, Gao & Roth 2010).
     strength : float
         ``lambda``: multiplies every precision (1 = as learned).
     strength_z : float
@@ -180,15 +223,19 @@ class GSMPrior:
     curvature: float = 0.0
     meta: dict = field(default_factory=dict, compare=False)
     noise_ref: float = 0.0
+    blocks: tuple = ()
 
     def __post_init__(self):
         for name in ("strength", "strength_z", "curvature", "noise_ref"):
             v = getattr(self, name)
             if not (math.isfinite(v) and v >= 0):
                 raise ValueError(f"{name} must be a non-negative finite number, got {v!r}")
-        if len({len(g.prec) for g in self.groups}) != 1:
+        every = self.groups + self.blocks
+        if len({len(g.prec) for g in every}) != 1:
             raise ValueError("all prior groups must have the same number of scales")
-        if self.groups and len(self.groups[0].prec) >= kernels.NO_CLIQUE:
+        if self.blocks and sorted(f for b in self.blocks for f in b.filters) != sorted(BLOCK_FILTER_NAMES):
+            raise ValueError(f"the block groups must cover the filters {BLOCK_FILTER_NAMES} once each")
+        if len(every[0].prec) >= kernels.NO_CLIQUE:
             raise ValueError(f"a prior has at most {kernels.NO_CLIQUE - 1} scales")
 
     # --- construction -----------------------------------------------------------
@@ -201,25 +248,29 @@ class GSMPrior:
 
     @classmethod
     def from_dict(cls, d):
-        if d.get("format") != "mrfclean-gsm-prior/1":
+        # format 2 adds block groups (a reader of format 1 would drop them silently)
+        if d.get("format") not in ("mrfclean-gsm-prior/1", "mrfclean-gsm-prior/2"):
             raise ValueError("not an mrfclean GSM prior description")
         prec = tuple(float(p) for p in d["precisions"])
         groups = tuple(PriorGroup(g["name"], tuple(tuple(int(v) for v in o) for o in g["offsets"]),
                                   tuple(float(a) for a in g["logamp"]), prec)
-                       for g in d["groups"])
+                       for g in d.get("groups", ()))
+        blocks = tuple(BlockGroup(g["name"], tuple(str(f) for f in g["filters"]),
+                                  tuple(float(a) for a in g["logamp"]), prec)
+                       for g in d.get("blocks", ()))
         # noise_ref belongs to an image's noise (set by the cleaner), not to a saved prior
         meta = {k: v for k, v in d.items()
-                if k not in ("groups", "precisions", "curvature", "noise_ref")}
-        return cls(groups, curvature=float(d.get("curvature", 0.0)), meta=meta)
+                if k not in ("groups", "blocks", "precisions", "curvature", "noise_ref")}
+        return cls(groups, curvature=float(d.get("curvature", 0.0)), meta=meta, blocks=blocks)
 
     @classmethod
     def load(cls, path=None, *, shipped=PRIOR_FILE):
         """A prior shipped with the package (or one saved at ``path``).
 
         ``shipped`` names the package's file: :data:`PRIOR_FILE` (score
-        matching, the default) or :data:`TUNED_PRIOR_FILE`.
+        matching, the default), :data:`TUNED_PRIOR_FILE` or :data:`BLOCK_PRIOR_FILE`.
         """
-        if shipped not in (PRIOR_FILE, TUNED_PRIOR_FILE):
+        if shipped not in (PRIOR_FILE, TUNED_PRIOR_FILE, BLOCK_PRIOR_FILE):
             raise ValueError(f"no shipped prior named {shipped!r}")
         if path is None:
             # one part per step: a package seen through two folders (a leftover folder of
@@ -232,28 +283,36 @@ class GSMPrior:
         return cls.from_dict(json.loads(text))
 
     def to_dict(self):
-        return {"format": "mrfclean-gsm-prior/1", **self.meta,
-                "precisions": list(self.groups[0].prec),
+        meta = {k: v for k, v in self.meta.items() if k != "format"}
+        blocks = ({"blocks": [{"name": b.name, "filters": list(b.filters), "logamp": list(b.logamp)}
+                              for b in self.blocks]} if self.blocks else {})
+        return {"format": "mrfclean-gsm-prior/2" if self.blocks else "mrfclean-gsm-prior/1", **meta,
+                "precisions": list((self.groups + self.blocks)[0].prec),
                 "groups": [{"name": g.name, "offsets": [list(o) for o in g.offsets],
                             "logamp": list(g.logamp)} for g in self.groups],
-                **({"curvature": self.curvature} if self.curvature else {})}
+                **blocks, **({"curvature": self.curvature} if self.curvature else {})}
 
     def with_strength(self, strength, strength_z=None):
         return GSMPrior(self.groups, float(strength),
                         self.strength_z if strength_z is None else float(strength_z),
-                        self.curvature, self.meta, self.noise_ref)
+                        self.curvature, self.meta, self.noise_ref, self.blocks)
 
     def with_curvature(self, curvature):
         return GSMPrior(self.groups, self.strength, self.strength_z, float(curvature), self.meta,
-                        self.noise_ref)
+                        self.noise_ref, self.blocks)
 
     def with_noise_ref(self, noise_ref):
         return GSMPrior(self.groups, self.strength, self.strength_z, self.curvature, self.meta,
-                        float(noise_ref))
+                        float(noise_ref), self.blocks)
 
     # --- kernel arrays -------------------------------------------------------------
     def arrays(self, planes: int):
-        """``(offsets (n, 3) int64, logamp (n, K), prec (n, K), strength (n,))`` for a lattice."""
+        """``(offsets (n, 3) int64, logamp (n, K), prec (n, K), strength (n,))`` for a lattice
+        (the pair cliques; see :meth:`block_arrays` for the blocks)."""
+        if planes > 1 and self.strength_z > 0 and not self.groups:
+            raise ValueError("this prior has no potential along z (it has block filters only): "
+                             "set the z strength to 0 or use a prior with pair groups")
+        K = len((self.groups + self.blocks)[0].prec)
         offs, la, pr, st = [], [], [], []
         for g in self.groups:
             for di, dj in g.offsets:
@@ -267,12 +326,25 @@ class GSMPrior:
             la.append(g.logamp)
             pr.append(g.prec)
             st.append(self.strength * self.strength_z)
-        return (np.array(offs, dtype=np.int64), np.array(la, dtype=np.float64),
-                np.array(pr, dtype=np.float64), np.array(st, dtype=np.float64))
+        return (np.array(offs, dtype=np.int64).reshape(-1, 3),
+                np.array(la, dtype=np.float64).reshape(-1, K),
+                np.array(pr, dtype=np.float64).reshape(-1, K), np.array(st, dtype=np.float64))
+
+    def block_arrays(self):
+        """``(logamp (3, K), prec (3, K), strength (3,))`` of the block filters in the kernels'
+        order, or None without block groups."""
+        if not self.blocks:
+            return None
+        by = {f: b for b in self.blocks for f in b.filters}
+        bs = [by[f] for f in BLOCK_FILTER_NAMES]
+        return (np.array([b.logamp for b in bs], dtype=np.float64),
+                np.array([b.prec for b in bs], dtype=np.float64),
+                np.full(len(bs), float(self.strength)))
 
     def potential(self, d, group=0):
-        """``-log phi(d)`` of one group at differences ``d`` (numpy, for plots and tests)."""
-        g = self.groups[group]
+        """``-log phi(d)`` of one group at differences ``d`` (numpy, for plots and tests);
+        block groups are numbered after the pair groups."""
+        g = (self.groups + self.blocks)[group]
         d = np.asarray(d, dtype=np.float64)[..., None]
         lp = np.asarray(g.logamp) - 0.5 * self.strength * np.asarray(g.prec) * d * d
         m = lp.max(axis=-1)
@@ -282,7 +354,9 @@ class GSMPrior:
         return {"prior": "gsm", "strength": float(self.strength),
                 "strength_z": float(self.strength_z), "curvature": float(self.curvature),
                 "offsets": [list(o) for g in self.groups for o in g.offsets],
-                "scales": len(self.groups[0].prec), "prior_source": self.meta.get("source", "given"),
+                **({"block_filters": [f for b in self.blocks for f in b.filters]} if self.blocks else {}),
+                "scales": len((self.groups + self.blocks)[0].prec),
+                "prior_source": self.meta.get("source", "given"),
                 **({"noise_ref": float(self.noise_ref)} if self.noise_ref else {})}
 
 
@@ -540,7 +614,10 @@ class GreyModel(ChainModel):
     diagonal and its inverse; two more for the triple normals when the
     curvature term is on, and one for the triples' factors when the prior is
     noise-stabilised) and the float64 data, chain states and tallies (plus
-    the float64 factor image of a noise-stabilised prior).
+    the float64 factor image of a noise-stabilised prior).  A prior with block
+    filters counts four pair offsets in ``n`` for the blocks' pair weights
+    (three components per pixel) and adds six solver-word images: the three
+    filter weights and their normals.
 
     References
     ----------
@@ -580,6 +657,13 @@ class GreyModel(ChainModel):
         self.prior = prior
         Z = self.grid.shape[0]
         self.offsets, self.logamp, self.prec, self.strength = prior.arrays(Z)
+        #: pair cliques: rows ``[:npair]`` of :attr:`w` and of a state's ``comp``; a prior with
+        #: block filters adds the blocks' pair weights (offsets ``kernels.BLOCK_OFFSETS``) to
+        #: ``w`` and their components (one row per filter) to ``comp``
+        self.npair = len(self.offsets)
+        self.blocks = prior.block_arrays()
+        if self.blocks is not None:
+            self.offsets = np.concatenate([self.offsets, kernels.BLOCK_OFFSETS])
         self.curv = float(prior.curvature)
         self.tol = float(tol)
         self.sample_tol = self.tol if sample_tol is None else float(sample_tol)
@@ -603,6 +687,7 @@ class GreyModel(ChainModel):
                        for s in (starts if starts is not None else [self.y])]
         n = len(self.offsets)
         shape = self.grid.shape
+        self.ncomp = self.npair + (kernels.BLOCK_FILTERS if self.blocks is not None else 0)
         # The solver works in single precision when both tolerances are far above
         # its resolution (6e-8): half the memory traffic and twice the vector width.
         ft = np.float32 if min(self.mean_tol, self.sample_tol) >= SINGLE_PRECISION_TOL else np.float64
@@ -612,12 +697,15 @@ class GreyModel(ChainModel):
         self._cs = (self.gs.astype(ft) if self.gs is not None and self.curv > 0
                     else np.zeros((0, 0, 0), ft))
         self.w = np.zeros((n, *shape), ft)
+        #: the block filters' weights (their pair weights are ``w[npair:]``)
+        self.bw = np.zeros((kernels.BLOCK_FILTERS if self.blocks is not None else 0, *shape), ft)
         self._buf = {k: np.zeros((2, *shape), ft) for k in ("x", "r", "p", "q", "z")}
         self._diag = np.zeros(shape, ft)
         self._minv = np.zeros(shape, ft)
         self._rhs = np.zeros((2, *shape), ft)  # [b, perturbation] of a temperature > 0 update
         self._rhs[0] = self.b
         self._pbuf = None  # clique normals of a perturbation, allocated at the first draw
+        self._bbuf = None  # and the block filters' normals
         self._cbuf = None  # and those of the second-difference triples
         self.stats = SolverStats()
 
@@ -628,7 +716,12 @@ class GreyModel(ChainModel):
 
     def _set_scales(self, comp):
         """The operator ``Q`` for the drawn components ``comp``: clique weights, then diagonal."""
-        kernels.gsm_expand(comp, self.prec, self.strength, self.w, self.offsets, self.gs)
+        k = self.npair
+        kernels.gsm_expand(comp[:k], self.prec, self.strength, self.w[:k], self.offsets[:k],
+                           self.gs)
+        if self.blocks is not None:
+            kernels.block_expand(comp[k:], self.blocks[1], self.blocks[2], self.bw, self.w[k:],
+                                 self.gs)
         self._set_operator()
 
     def apply(self, x, weights=None):
@@ -671,11 +764,18 @@ class GreyModel(ChainModel):
         """Scales | image: components into ``state.comp``; the energy of ``x`` comes with them."""
         reflect = self.reflect_scales and state.comp is not None  # a chain's first draw: plain
         if state.comp is None:
-            state.comp = np.empty(self.w.shape, np.uint8)
+            state.comp = np.empty((self.ncomp, *self.grid.shape), np.uint8)
+        k = self.npair
         state.energy = float(kernels.gsm_draw_components(
-            state.x, self.y, self.dw, self.offsets, self.logamp, self.prec, self.strength,
-            float(temperature), np.uint64(key), state.comp, self.gs, reflect)
+            state.x, self.y, self.dw, self.offsets[:k], self.logamp, self.prec, self.strength,
+            float(temperature), np.uint64(key), state.comp[:k], self.gs, reflect)
         ) + self._curv_energy(state.x)
+        if self.blocks is not None:
+            la, pr, st = self.blocks
+            state.energy += float(kernels.block_draw_components(
+                state.x, la, pr, st, float(temperature),
+                kernels.derive_key(np.uint64(key), kernels._GREY_BLOCK_SALT), state.comp[k:],
+                self.gs, reflect))
 
     def _curv_energy(self, x):
         """``kappa / 2`` times the summed squared in-plane second differences of ``x``."""
@@ -701,14 +801,19 @@ class GreyModel(ChainModel):
                               kernels.derive_key(np.uint64(key), kernels._GREY_START_SALT))
         self._set_scales(state.comp)
         if temperature > 0:
+            k = self.npair
             if self._pbuf is None:
-                self._pbuf = np.empty_like(self.w)
+                self._pbuf = np.empty_like(self.w[:k])
+                self._bbuf = np.empty_like(self.bw)
                 if self.curv > 0:
                     self._cbuf = np.empty((2, *self.grid.shape), self.solver_dtype)
-            kernels.gmrf_perturbation(self.w, self.offsets, self._dw_s,
-                                      kernels.derive_key(np.uint64(key), kernels._GREY_NOISE_SALT),
+            noise_key = kernels.derive_key(np.uint64(key), kernels._GREY_NOISE_SALT)
+            kernels.gmrf_perturbation(self.w[:k], self.offsets[:k], self._dw_s, noise_key,
                                       math.sqrt(temperature), self._rhs[1], self._pbuf,
                                       self.curv, self._cbuf, self._cs)
+            if self.blocks is not None:  # counters after the pairs', data's and triples'
+                kernels.block_perturbation(self.bw, noise_key, (k + 3) * self.grid.size,
+                                           math.sqrt(temperature), self._rhs[1], self._bbuf)
             if state.draws < self.single_solves:
                 np.add(self._rhs[0], self._rhs[1], out=self._rhs[1])
                 X, it = self.solve(self._rhs[1:], (state.x,), (self.sample_tol,))
@@ -740,8 +845,12 @@ class GreyModel(ChainModel):
         e_old = self.energy_of(state.x)
         state.mu[...] = state.x
         for k in range(1, max_passes + 1):
-            kernels.gsm_mean_weights(state.x, self.offsets, self.logamp, self.prec,
-                                     self.strength, self.w, self.gs)
+            k = self.npair
+            kernels.gsm_mean_weights(state.x, self.offsets[:k], self.logamp, self.prec,
+                                     self.strength, self.w[:k], self.gs)
+            if self.blocks is not None:
+                la, pr, st = self.blocks
+                kernels.block_mean_weights(state.x, la, pr, st, self.bw, self.w[k:], self.gs)
             self._set_operator()
             X, _ = self.solve(self.b[None], state.x[None])
             e_new = self.energy_of(X[0])
@@ -790,8 +899,11 @@ class GreyModel(ChainModel):
 
     def prior_energy_of(self, x) -> float:
         x = self._as_image(x)
-        return float(kernels.gsm_prior_energy(x, self.offsets, self.logamp, self.prec,
-                                              self.strength, self.gs)) + self._curv_energy(x)
+        e = float(kernels.gsm_prior_energy(x, self.offsets[:self.npair], self.logamp, self.prec,
+                                           self.strength, self.gs)) + self._curv_energy(x)
+        if self.blocks is not None:
+            e += float(kernels.block_prior_energy(x, *self.blocks, self.gs))
+        return e
 
     def data_energy_of(self, x) -> float:
         r = self._as_image(x) - self.y
