@@ -135,7 +135,8 @@ def add_model_options(p):
                    help="grey: smooth (flat or slowly varying regions between edges: cells, "
                         "phantoms; SURE may add the smooth-ramp term) or textured (fine texture "
                         "everywhere) (default auto: chosen from the image's roughness; smooth "
-                        "when --strength or --curvature is set)")
+                        "when --strength or --curvature is set); blocks: a trial prior on 2 x 2 "
+                        "blocks, chosen only by name")
     m.add_argument("--boundary", choices=("free", "periodic"), help="lattice boundary (default free)")
     m.add_argument("--stack", choices=("volume", "planes"),
                    help="a stack of planes is one 3-D volume, z coupling from the voxel size "

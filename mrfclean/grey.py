@@ -19,8 +19,8 @@ from .estimates import CleanResult, Diagnostics, anneal, record_posterior, sampl
 from .fit.grey import (FLATTEST_SHARE, choose_curvature, choose_strength, estimate_poisson_gaussian,
                        estimate_sigma, signal_roughness)
 from .lattice import Grid
-from .models.grey import (PRIOR_FILE, TUNED_PRIOR_FILE, GaussianNoise, GreyModel, GSMPrior,
-                          PoissonGaussianNoise)
+from .models.grey import (BLOCK_PRIOR_FILE, PRIOR_FILE, TUNED_PRIOR_FILE, GaussianNoise, GreyModel,
+                          GSMPrior, PoissonGaussianNoise)
 from .sampler import to_seed
 from .schedules import Geometric, Schedule
 
@@ -28,9 +28,11 @@ METHODS = ("mean", "map")
 NOISES = ("auto", "gaussian", "poisson-gaussian")
 #: Names of the shipped priors: ``"smooth"`` (score matching, :data:`mrfclean.models.grey.PRIOR_FILE`;
 #: SURE may add the curvature term) and ``"textured"`` (tuned for PSNR on the training
-#: images, :data:`mrfclean.models.grey.TUNED_PRIOR_FILE`); ``"auto"`` picks one from the
-#: image's roughness (see :func:`grey_setup`).
-PRIORS = ("auto", "smooth", "textured")
+#: images, :data:`mrfclean.models.grey.TUNED_PRIOR_FILE`); ``"auto"`` picks one of those
+#: two from the image's roughness (see :func:`grey_setup`).  ``"blocks"`` (opt-in, not
+#: chosen by "auto"): score matching on the 2 x 2 block filters
+#: (:data:`mrfclean.models.grey.BLOCK_PRIOR_FILE`; SURE may add the curvature term).
+PRIORS = ("auto", "smooth", "textured", "blocks")
 
 #: Defaults chosen with scripts/bench_grey.py (see README, "Benchmarks").  Chain
 #: length per chain, burn-in + kept (scripts/chain_lengths.py, twelve 512^2
@@ -566,7 +568,8 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
             estimated.append("prior")
     tuned = choice == "textured"
     if choice:
-        base = GSMPrior.load(shipped=TUNED_PRIOR_FILE if tuned else PRIOR_FILE)
+        base = GSMPrior.load(shipped={"textured": TUNED_PRIOR_FILE,
+                                      "blocks": BLOCK_PRIOR_FILE}.get(choice, PRIOR_FILE))
     elif isinstance(prior, GSMPrior):
         base = prior
     else:
@@ -586,7 +589,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
                                else _number("curvature", curvature, positive=False))
     if strength == "auto":
         # the guesses were fitted for the shipped priors; another prior starts at 0.5
-        start = (0.5 if not choice else
+        start = (0.5 if choice in (None, "blocks") else
                  strength_start(noise_sd, roughness, TUNED_STRENGTH_START if tuned else STRENGTH_START))
         fit = choose_strength(u, var_u, base, start=start, seed=sseed, tol=tol,
                               reflect=SURE_REFLECT, spread_share=SPREAD_SHARE)

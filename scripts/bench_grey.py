@@ -90,6 +90,9 @@ def main(argv=None) -> int:
     p.add_argument("--sigmas", type=float, nargs="+", default=list(SIGMAS))
     p.add_argument("--no-poisson", action="store_true")
     p.add_argument("--seed", type=int, default=20260)
+    p.add_argument("--prior", default="auto",
+                   help="mrfclean's prior: a name from mrfclean.grey.PRIORS or a prior file "
+                        "(default auto, as shipped)")
     args = p.parse_args(argv)
     gen = np.random.default_rng(args.seed)
     cases = [(n, sz, "gauss", s) for sz in args.sizes for n in args.images for s in args.sigmas]
@@ -112,7 +115,7 @@ def main(argv=None) -> int:
         res = {}
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ChainsDisagree)
-            r, t = timed(clean_grey, y, rng=1)
+            r, t = timed(clean_grey, y, rng=1, prior=args.prior)
         lo, hi = credible_interval(r, 0.95)
         inside = (x >= lo) & (x <= hi)
         cover_hits += int(inside.sum())
