@@ -149,6 +149,16 @@ STRENGTH_START = (-8.62, -0.724, -0.875)
 #: fitted on the same runs with it (scripts/fit_strength_guess.py --prior tuned;
 #: residual sd 0.89): its strengths come out 2.5-4 times higher.
 TUNED_STRENGTH_START = (-7.046, -0.371, -0.907)
+#: The same line for the block-filter prior (:data:`mrfclean.models.grey.BLOCK_PRIOR_FILE`;
+#: scripts/fit_strength_guess.py --prior blocks, residual sd 1.16).
+BLOCK_STRENGTH_START = (-7.757, -0.169, -0.997)
+#: The prior "auto" gives a 2-D image no smoother than the training images (see
+#: :data:`SMOOTH_PRIOR_GATE`): "blocks" since stop 24, "textured" before.  Measured
+#: by swapping it on the images "auto" routed to "textured" (DEVELOPERS.md, stop 24):
+#: +0.198 dB on 40 training-image cases (crop 384, seed 8; 27 gain, 13 lose), +0.110
+#: on the 12 held-out cases of scripts/heldout_grey.py (9 gain, 3 lose; the phantom at
+#: sigma 0.2 loses 1.06), in 0.86-0.90 of the time.
+ROUGH_PRIOR = "blocks"
 #: First weight of the second-difference term tried by SURE, times the noise
 #: precision (prototype runs put the best weight at 0.25-2.5 over sigma^2 on
 #: smooth images; on textured ones none helps).
@@ -159,8 +169,9 @@ CURVATURE_GUESS = 2.0
 #: at sigma 0.05 it settled 1-2 such steps further (weights 16-64 over sigma^2 at
 #: 1/9-1/27 of the strength), 0.7-0.9 dB above this first point's own weight walk.
 CURVATURE_STRENGTH = 1 / 3
-#: With strength, curvature and prior on "auto", the prior tuned for denoising
-#: ("textured") serves images whose roughness predicts a strength for the score-matching
+#: With strength, curvature and prior on "auto", :data:`ROUGH_PRIOR` (the block
+#: prior; until stop 24 the prior tuned for denoising, "textured") serves images whose
+#: roughness predicts a strength for the score-matching
 #: prior below this many times the guess for the noise level (one residual sd in log
 #: strength): no smoother than a typical training image.  Smoother images get the
 #: "smooth" (score-matching) prior, which always tries the curvature term.  On the
@@ -335,31 +346,38 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
         :func:`mrfclean.fit.grey.choose_curvature`).
         It helps on smooth specimens (fluorescence-like, few sharp edges) and
         is left out (0) on textured ones.
-    prior : {"auto", "smooth", "textured"}, GSMPrior or path, optional
+    prior : {"auto", "smooth", "textured", "blocks"}, GSMPrior or path, optional
         Which pixel-coupling prior (None is ``"auto"``; a path names a prior
-        file written by ``scripts/learn_grey_prior.py``).  The two shipped in
+        file written by ``scripts/learn_grey_prior.py``).  The three shipped in
         ``mrfclean/data``:
 
         * ``"smooth"``: ``grey_prior.json``, learned by score matching on the
-          training images.  For regions of flat or slowly varying intensity
-          between edges (cells, phantoms, fundus images); with curvature on
-          "auto", SURE tries the second-difference term beside it.
-        * ``"textured"``: ``grey_prior_tuned.json``, the same prior with its
-          weights tuned for this cleaner's PSNR on noisy training images.  For
-          fine texture everywhere; the curvature term is not tried with it
-          (SURE cannot judge it there).
+          training images' neighbour differences.  For regions of flat or
+          slowly varying intensity between edges (cells, phantoms, fundus
+          images); with curvature on "auto", SURE tries the second-difference
+          term beside it.
+        * ``"blocks"``: ``grey_prior_blocks.json``, learned by score matching
+          on the responses of the 2 x 2 block filters (cliques of four pixels,
+          see :mod:`mrfclean.models.grey`).  For texture and fine detail; the
+          curvature term is not tried with it.  2-D images only (it has no
+          potential along z).
+        * ``"textured"``: ``grey_prior_tuned.json``, the smooth prior with its
+          weights tuned for this cleaner's PSNR on noisy training images; the
+          curvature term is not tried with it (SURE cannot judge it there).
+          Until stop 24 the default for textured images.
 
         ``"auto"``, with strength and curvature on "auto" too, picks
-        ``"textured"`` for an image no smoother than the training images (its
-        roughness predicts a strength below :data:`SMOOTH_PRIOR_GATE` times
-        the usual one) and ``"smooth"`` for a smoother one, logging ``prior``
-        in ``estimated``; with a strength or curvature set by hand it is
-        ``"smooth"``.  The rule can pick wrong: on the Shepp-Logan phantom
-        (flat regions, sharp edges) it picks ``"textured"``, below
-        ``"smooth"`` by 2.3, 2.0 and 1.1 dB at sigma 0.05, 0.1 and 0.2 of the
-        range on a 384^2 crop (``scripts/heldout_grey.py``) and by 1.6-1.8
-        dB on 256^2 crops at sigma 0.1.  ``prior_family`` in the parameters
-        says which was used (``"given"`` for another prior).
+        ``"blocks"`` (``"textured"`` for a volume) for an image no smoother
+        than the training images (its roughness predicts a strength below
+        :data:`SMOOTH_PRIOR_GATE` times the usual one) and ``"smooth"`` for
+        a smoother one, logging ``prior`` in ``estimated``; with a strength
+        or curvature set by hand it is ``"smooth"``.  The rule can pick
+        wrong: on the Shepp-Logan phantom (flat regions, sharp edges) it picks
+        the rough-image prior, below ``"smooth"`` by 1.1-2.3 dB
+        (``scripts/heldout_grey.py``, 384^2 crop, with ``"textured"``; the
+        block prior gains 0.7 dB on it at sigma 0.05 and loses 1.1 at 0.2).
+        ``prior_family`` in the parameters says which was used (``"given"``
+        for another prior).
     schedule : Schedule, optional
         Annealing schedule for ``"map"``; default geometric 1.0 → 0.01.
     sweeps : int, optional
@@ -445,7 +463,7 @@ class GreySetup:
     were chosen (None when given);
     ``sure_strength`` is the strength SURE chose before the curvature term was
     tried (the prior's own strength unless the term was taken); ``family`` is
-    ``"smooth"`` or ``"textured"`` (a shipped prior, see :data:`PRIORS`) or
+    ``"smooth"``, ``"textured"`` or ``"blocks"`` (a shipped prior, see :data:`PRIORS`) or
     ``"given"``.
     """
 
@@ -459,7 +477,7 @@ class GreySetup:
     curvature_table: list | None = None
     sure_strength: float | None = None
     sure_walk: list | None = None
-    family: str = "given"  # "smooth" or "textured" (a shipped prior) or "given"
+    family: str = "given"  # "smooth", "textured" or "blocks" (a shipped prior) or "given"
 
     def observed(self, y, smooth=None):
         """``(u, var_u)``: a block of physical intensities in the prior's units and its noise
@@ -555,18 +573,22 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     choice = "auto" if prior is None else prior if isinstance(prior, str) and prior in PRIORS else None
     roughness = signal_roughness(u, var_u) if choice and strength == "auto" else None
     # With strength and curvature on "auto" and no prior named, an image no smoother
-    # than the training images gets the prior tuned for denoising on them ("textured");
+    # than the training images gets ROUGH_PRIOR (the block prior; a volume the prior
+    # tuned for denoising on them, "textured");
     # a smoother one keeps the score-matching prior ("smooth"), with which SURE can judge
     # the curvature term (with the tuned one it cannot; measured at stop 15, see
     # TUNED_STRENGTH_START and DEVELOPERS.md).  Smoother: the strength the image's
     # roughness predicts for the score-matching prior is above the gate.
     if choice == "auto":
         auto = strength == "auto" and curvature == "auto"
-        choice = ("textured" if auto and strength_start(noise_sd, roughness)
+        # a volume needs a z potential, which the block prior has not
+        rough = ROUGH_PRIOR if y.shape[0] == 1 else "textured"
+        choice = (rough if auto and strength_start(noise_sd, roughness)
                   < SMOOTH_PRIOR_GATE * strength_guess(noise_sd) else "smooth")
         if auto:
             estimated.append("prior")
-    tuned = choice == "textured"
+    # the curvature term is tried only with the smooth prior (see SMOOTH_PRIOR_GATE)
+    tuned = choice in ("textured", "blocks")
     if choice:
         base = GSMPrior.load(shipped={"textured": TUNED_PRIOR_FILE,
                                       "blocks": BLOCK_PRIOR_FILE}.get(choice, PRIOR_FILE))
@@ -589,8 +611,10 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
                                else _number("curvature", curvature, positive=False))
     if strength == "auto":
         # the guesses were fitted for the shipped priors; another prior starts at 0.5
-        start = (0.5 if choice in (None, "blocks") else
-                 strength_start(noise_sd, roughness, TUNED_STRENGTH_START if tuned else STRENGTH_START))
+        start = (0.5 if not choice else
+                 strength_start(noise_sd, roughness, {"textured": TUNED_STRENGTH_START,
+                                                      "blocks": BLOCK_STRENGTH_START}
+                                .get(choice, STRENGTH_START)))
         fit = choose_strength(u, var_u, base, start=start, seed=sseed, tol=tol,
                               reflect=SURE_REFLECT, spread_share=SPREAD_SHARE)
         lam = fit.strength
@@ -601,7 +625,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     else:
         lam = _number("strength", strength, positive=False)
     if curvature == "auto" and tuned:
-        setup.curvature_table = []  # not tried: SURE cannot judge it with the textured prior
+        setup.curvature_table = []  # not tried with the rough-image priors (SMOOTH_PRIOR_GATE)
         estimated.append("curvature")
     elif curvature == "auto":
         # the least plain SURE the walk found for the prior alone (the parabola's vertex

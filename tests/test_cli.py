@@ -69,7 +69,7 @@ def test_same_seed_same_bytes(noisy_png, tmp_path):
     assert np.array_equal(a, b)
 
 
-@pytest.mark.parametrize("prior", ["smooth", "textured"])
+@pytest.mark.parametrize("prior", ["smooth", "textured", "blocks"])
 def test_prior_flag_reaches_the_grey_cleaner_and_is_logged(tmp_path, prior):
     """``--prior`` picks the shipped grey prior; the manifest's parameters say which."""
     from mrfclean.manifest import read_manifest
@@ -83,6 +83,22 @@ def test_prior_flag_reaches_the_grey_cleaner_and_is_logged(tmp_path, prior):
     done = [e for e in read_manifest(tmp_path / "out" / "manifest.jsonl") if "params" in e]
     assert [e["params"]["prior_family"] for e in done] == [prior]
     assert done[0]["settings"]["prior"] == prior
+
+
+def test_block_prior_on_a_volume_is_refused_with_one_line(tmp_path, capsys):
+    """The block prior has no potential along z: a grey stack cleaned as a volume with it
+    gets one line naming the file and a non-zero exit, and nothing is written."""
+    import tifffile
+
+    x = (np.random.default_rng(0).random((3, 24, 24)) * 4000).astype(np.uint16)
+    src = tmp_path / "stack.tif"
+    tifffile.imwrite(src, x, photometric="minisblack")
+    rc = main(["clean", str(src), "-o", str(tmp_path / "out"), "--prior", "blocks",
+               "--stack", "volume", "--samples", "2"])
+    assert rc != 0
+    line = _one_line_error(capsys)
+    assert line.startswith(str(src)) and "no potential along z" in line
+    assert not (tmp_path / "out" / "stack.tif").exists()
 
 
 def test_refuses_to_overwrite_input(noisy_png, capsys):
