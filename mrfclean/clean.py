@@ -68,7 +68,7 @@ class Settings:
     curvature : float or "auto"
         Grey: weight of the second-difference (smooth-ramp) term; ``"auto"``:
         chosen by SURE, 0 when it does not help.
-    prior : {"auto", "smooth", "textured"}
+    prior : {"auto", "smooth", "textured", "blocks"}
         Grey: which shipped prior; ``"auto"`` picks one from the image's
         roughness, or ``"smooth"`` when strength or curvature is set (see
         :func:`mrfclean.grey.clean_grey`, which also takes a prior file).

@@ -130,13 +130,14 @@ def add_model_options(p):
     m.add_argument("--curvature", type=_auto_or_float,
                    help="grey: weight of the smooth-ramp (second-difference) term "
                         "(default: chosen by SURE with the smooth prior, 0 when it does not help "
-                        "and with the textured prior)")
+                        "and with the textured and blocks priors)")
     m.add_argument("--prior", choices=PRIORS,
                    help="grey: smooth (flat or slowly varying regions between edges: cells, "
-                        "phantoms; SURE may add the smooth-ramp term) or textured (fine texture "
-                        "everywhere) (default auto: chosen from the image's roughness; smooth "
-                        "when --strength or --curvature is set); blocks: a trial prior on 2 x 2 "
-                        "blocks, chosen only by name")
+                        "phantoms; SURE may add the smooth-ramp term), blocks (potentials on "
+                        "2 x 2 blocks: texture and fine detail; 2-D only) or textured (the "
+                        "pairwise prior tuned for texture) (default auto: smooth or, for an "
+                        "image no smoother than the training images, blocks (textured for a "
+                        "volume); smooth when --strength or --curvature is set)")
     m.add_argument("--boundary", choices=("free", "periodic"), help="lattice boundary (default free)")
     m.add_argument("--stack", choices=("volume", "planes"),
                    help="a stack of planes is one 3-D volume, z coupling from the voxel size "

@@ -28,10 +28,10 @@ METHODS = ("mean", "map")
 NOISES = ("auto", "gaussian", "poisson-gaussian")
 #: Names of the shipped priors: ``"smooth"`` (score matching, :data:`mrfclean.models.grey.PRIOR_FILE`;
 #: SURE may add the curvature term) and ``"textured"`` (tuned for PSNR on the training
-#: images, :data:`mrfclean.models.grey.TUNED_PRIOR_FILE`); ``"auto"`` picks one of those
-#: two from the image's roughness (see :func:`grey_setup`).  ``"blocks"`` (opt-in, not
-#: chosen by "auto"): score matching on the 2 x 2 block filters
-#: (:data:`mrfclean.models.grey.BLOCK_PRIOR_FILE`; SURE may add the curvature term).
+#: images, :data:`mrfclean.models.grey.TUNED_PRIOR_FILE`) and ``"blocks"`` (score matching
+#: on the 2 x 2 block filters, :data:`mrfclean.models.grey.BLOCK_PRIOR_FILE`; 2-D only);
+#: ``"auto"`` picks "smooth" or :data:`ROUGH_PRIOR` ("blocks"; "textured" for a volume)
+#: from the image's roughness (see :func:`grey_setup`).  Only "smooth" tries the curvature term.
 PRIORS = ("auto", "smooth", "textured", "blocks")
 
 #: Defaults chosen with scripts/bench_grey.py (see README, "Benchmarks").  Chain
@@ -152,6 +152,9 @@ TUNED_STRENGTH_START = (-7.046, -0.371, -0.907)
 #: The same line for the block-filter prior (:data:`mrfclean.models.grey.BLOCK_PRIOR_FILE`;
 #: scripts/fit_strength_guess.py --prior blocks, residual sd 1.16).
 BLOCK_STRENGTH_START = (-7.757, -0.169, -0.997)
+#: Refusal of a block-only prior for a volume (it has no potential along z).
+NO_Z_POTENTIAL = ("the block prior has no potential along z: clean the stack plane by plane "
+                  "(stack \"planes\") or choose the smooth or textured prior")
 #: The prior "auto" gives a 2-D image no smoother than the training images (see
 #: :data:`SMOOTH_PRIOR_GATE`): "blocks" since stop 24, "textured" before.  Measured
 #: by swapping it on the images "auto" routed to "textured" (DEVELOPERS.md, stop 24):
@@ -596,6 +599,8 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         base = prior
     else:
         base = GSMPrior.load(prior)
+    if base.blocks and not base.groups and y.shape[0] > 1:
+        raise ValueError(NO_Z_POTENTIAL)
     setup.family = choice or "given"
     # Under signal-dependent noise the prior acts on the noise-stabilised image (see
     # GSMPrior.noise_ref): over 18 Poisson-Gaussian draws on the benchmark's images

@@ -994,7 +994,7 @@ def _gsm_rows(x, y, dw, offsets, logamp, prec, strength, temperature, key, mode,
     draw = mode == _GSM_DRAW
     fast = mode != _GSM_MEAN and temperature == 1.0 and amp.shape[0] == n
     nocomp = np.zeros(0, np.uint8)
-    noweight = np.zeros(0)
+    noweight = w.reshape(-1)[:0]  # typed as w (float32 in the solver, float64 in tests)
     for k in prange(Z * H):
         z = k // H
         i = k - z * H
@@ -1261,7 +1261,7 @@ def _block_rows(x, logamp, prec, strength, temperature, key, mode, w, comp, rows
     draw = mode == _GSM_DRAW
     fast = mode != _GSM_MEAN and temperature == 1.0 and amp.shape[0] == BLOCK_FILTERS
     nocomp = np.zeros(0, np.uint8)
-    noweight = np.zeros(0)
+    noweight = w.reshape(-1)[:0]  # typed as w (float32 in the solver, float64 in tests)
     for k in prange(Z * H):
         z = k // H
         i = k - z * H

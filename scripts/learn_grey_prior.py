@@ -24,8 +24,9 @@ Two stages, both on clean images that scikit-image ships, converted to grey in
    DEVELOPERS.md, stop 15).
 
 ``--blocks`` fits, by the same score matching, a prior on the 2 x 2 block
-filters instead of neighbour differences (``grey_prior_blocks.json``, an
-opt-in prior; DEVELOPERS.md, stop 24).
+filters instead of neighbour differences (``grey_prior_blocks.json``, the
+cleaner's prior for rough 2-D images since stop 24; DEVELOPERS.md).  With
+``--tune`` it is tuned the same way, on the cases the cleaner gives it.
 
 Example
 -------

@@ -31,6 +31,7 @@ References
 from __future__ import annotations
 
 import math
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -642,9 +643,10 @@ LIVE_LOGAMP = -6.0
 def live_components(prior: GSMPrior, *, floor=LIVE_LOGAMP):
     """``[(group, component)]`` of the mixture weights a tuning moves.
 
-    Each group's largest weight is its reference (a group's weights matter
-    only relative to each other), and weights below ``floor`` relative to it
-    are left alone.
+    Groups are numbered over the pair groups, then the block groups.  Each
+    group's largest weight is its reference (a group's weights matter only
+    relative to each other), and weights below ``floor`` relative to it are
+    left alone.
 
     Examples
     --------
@@ -652,7 +654,7 @@ def live_components(prior: GSMPrior, *, floor=LIVE_LOGAMP):
     [(0, 1)]
     """
     out = []
-    for gi, g in enumerate(prior.groups):
+    for gi, g in enumerate(prior.groups + prior.blocks):
         ref = int(np.argmax(g.logamp))
         out += [(gi, c) for c, a in enumerate(g.logamp) if c != ref and a - g.logamp[ref] >= floor]
     return out
@@ -660,12 +662,14 @@ def live_components(prior: GSMPrior, *, floor=LIVE_LOGAMP):
 
 def with_logamps(prior: GSMPrior, components, values) -> GSMPrior:
     """``prior`` with the log-amplitudes of ``components`` (from :func:`live_components`) set."""
-    la = [list(g.logamp) for g in prior.groups]
+    every = prior.groups + prior.blocks
+    la = [list(g.logamp) for g in every]
     for (gi, c), v in zip(components, values):
         la[gi][c] = float(v)
-    groups = tuple(PriorGroup(g.name, g.offsets, tuple(a), g.prec) for g, a in zip(prior.groups, la))
-    return GSMPrior(groups, prior.strength, prior.strength_z, prior.curvature, dict(prior.meta),
-                    prior.noise_ref)
+    made = [dataclasses.replace(g, logamp=tuple(a)) for g, a in zip(every, la)]
+    n = len(prior.groups)
+    return GSMPrior(tuple(made[:n]), prior.strength, prior.strength_z, prior.curvature,
+                    dict(prior.meta), prior.noise_ref, tuple(made[n:]))
 
 
 def _symmetry_groups(offsets):

@@ -115,8 +115,8 @@ PRIOR_FILE = "grey_prior.json"
 #: smoother than those (see mrfclean.grey.grey_setup).
 TUNED_PRIOR_FILE = "grey_prior_tuned.json"
 #: A score-matching fit of potentials on the 2 x 2 block filters instead of neighbour
-#: differences (scripts/learn_grey_prior.py --blocks): opt-in (``prior="blocks"``) while
-#: it is measured against the pairwise priors (DEVELOPERS.md, stop 24).
+#: differences (scripts/learn_grey_prior.py --blocks); since stop 24 the cleaner's prior
+#: for rough 2-D images (see mrfclean.grey.ROUGH_PRIOR and DEVELOPERS.md).
 BLOCK_PRIOR_FILE = "grey_prior_blocks.json"
 #: Conjugate gradients run in float32 when both tolerances are at least this
 #: (float32 resolves 6e-8, so the recursion's rounding stays far below them);
@@ -249,15 +249,23 @@ class GSMPrior:
     @classmethod
     def from_dict(cls, d):
         # format 2 adds block groups (a reader of format 1 would drop them silently)
-        if d.get("format") not in ("mrfclean-gsm-prior/1", "mrfclean-gsm-prior/2"):
+        fmt = d.get("format") if isinstance(d, dict) else None
+        if fmt not in ("mrfclean-gsm-prior/1", "mrfclean-gsm-prior/2"):
             raise ValueError("not an mrfclean GSM prior description")
-        prec = tuple(float(p) for p in d["precisions"])
-        groups = tuple(PriorGroup(g["name"], tuple(tuple(int(v) for v in o) for o in g["offsets"]),
-                                  tuple(float(a) for a in g["logamp"]), prec)
-                       for g in d.get("groups", ()))
-        blocks = tuple(BlockGroup(g["name"], tuple(str(f) for f in g["filters"]),
-                                  tuple(float(a) for a in g["logamp"]), prec)
-                       for g in d.get("blocks", ()))
+        if d.get("blocks") and fmt != "mrfclean-gsm-prior/2":
+            raise ValueError("a prior with block groups must be of format mrfclean-gsm-prior/2")
+        try:
+            prec = tuple(float(p) for p in d["precisions"])
+            groups = tuple(PriorGroup(g["name"], tuple(tuple(int(v) for v in o) for o in g["offsets"]),
+                                      tuple(float(a) for a in g["logamp"]), prec)
+                           for g in d.get("groups", ()))
+            blocks = tuple(BlockGroup(g["name"], tuple(str(f) for f in g["filters"]),
+                                      tuple(float(a) for a in g["logamp"]), prec)
+                           for g in d.get("blocks", ()))
+        except (KeyError, TypeError, ValueError) as e:
+            raise ValueError(f"not a valid mrfclean GSM prior description ({type(e).__name__}: {e})") from None
+        if not groups and not blocks:
+            raise ValueError("a GSM prior description needs pair groups or block groups")
         # noise_ref belongs to an image's noise (set by the cleaner), not to a saved prior
         meta = {k: v for k, v in d.items()
                 if k not in ("groups", "blocks", "precisions", "curvature", "noise_ref")}
@@ -310,8 +318,8 @@ class GSMPrior:
         """``(offsets (n, 3) int64, logamp (n, K), prec (n, K), strength (n,))`` for a lattice
         (the pair cliques; see :meth:`block_arrays` for the blocks)."""
         if planes > 1 and self.strength_z > 0 and not self.groups:
-            raise ValueError("this prior has no potential along z (it has block filters only): "
-                             "set the z strength to 0 or use a prior with pair groups")
+            raise ValueError("the block prior has no potential along z: clean the stack plane "
+                             "by plane or use a prior with pair groups")
         K = len((self.groups + self.blocks)[0].prec)
         offs, la, pr, st = [], [], [], []
         for g in self.groups:
@@ -662,8 +670,10 @@ class GreyModel(ChainModel):
         #: ``w`` and their components (one row per filter) to ``comp``
         self.npair = len(self.offsets)
         self.blocks = prior.block_arrays()
-        if self.blocks is not None:
-            self.offsets = np.concatenate([self.offsets, kernels.BLOCK_OFFSETS])
+        #: offsets of the rows of :attr:`w` (the solver's operator): the pair cliques', then
+        #: with block filters ``kernels.BLOCK_OFFSETS`` for the blocks' pair weights
+        self.op_offsets = (np.concatenate([self.offsets, kernels.BLOCK_OFFSETS])
+                           if self.blocks is not None else self.offsets)
         self.curv = float(prior.curvature)
         self.tol = float(tol)
         self.sample_tol = self.tol if sample_tol is None else float(sample_tol)
@@ -685,7 +695,7 @@ class GreyModel(ChainModel):
         self.closing_mean = bool(closing_mean)
         self.starts = [np.asarray(s, dtype=np.float64).reshape(self.grid.shape)
                        for s in (starts if starts is not None else [self.y])]
-        n = len(self.offsets)
+        n = len(self.op_offsets)
         shape = self.grid.shape
         self.ncomp = self.npair + (kernels.BLOCK_FILTERS if self.blocks is not None else 0)
         # The solver works in single precision when both tolerances are far above
@@ -711,26 +721,27 @@ class GreyModel(ChainModel):
 
     # --- linear algebra -------------------------------------------------------------
     def _set_operator(self):
-        kernels.gmrf_diagonal(self.w, self.offsets, self._dw_s, self.curv, self._cs, self._diag)
+        kernels.gmrf_diagonal(self.w, self.op_offsets, self._dw_s, self.curv, self._cs, self._diag)
         np.divide(1.0, self._diag, out=self._minv)
 
     def _set_scales(self, comp):
         """The operator ``Q`` for the drawn components ``comp``: clique weights, then diagonal."""
-        k = self.npair
-        kernels.gsm_expand(comp[:k], self.prec, self.strength, self.w[:k], self.offsets[:k],
+        npair = self.npair
+        kernels.gsm_expand(comp[:npair], self.prec, self.strength, self.w[:npair], self.offsets,
                            self.gs)
         if self.blocks is not None:
-            kernels.block_expand(comp[k:], self.blocks[1], self.blocks[2], self.bw, self.w[k:],
-                                 self.gs)
+            kernels.block_expand(comp[npair:], self.blocks[1], self.blocks[2], self.bw,
+                                 self.w[npair:], self.gs)
         self._set_operator()
 
     def apply(self, x, weights=None):
-        """``Q x`` for the current (or given) clique weights; ``x`` of shape ``(Z, H, W)``."""
+        """``Q x`` for the current (or given) clique weights (one row per :attr:`op_offsets`,
+        the blocks' pair weights included); ``x`` of shape ``(Z, H, W)``."""
         w = np.ascontiguousarray(self.w if weights is None else weights, dtype=np.float64)
         xs = np.ascontiguousarray(np.asarray(x, dtype=np.float64).reshape(1, *self.grid.shape))
         out = np.empty_like(xs)
         cs = self.gs if self._cs.size else np.zeros((0, 0, 0))  # float64 twin of _cs
-        kernels.gmrf_matvec(xs, w, self.offsets, self.dw, self.curv, cs, out,
+        kernels.gmrf_matvec(xs, w, self.op_offsets, self.dw, self.curv, cs, out,
                             np.empty((1, self.grid.shape[0] * self.grid.shape[1])))
         return out[0]
 
@@ -748,7 +759,7 @@ class GreyModel(ChainModel):
             X[k] = x0[k]
         tols = np.full(R, self.mean_tol) if tols is None else np.asarray(tols, dtype=np.float64)
         B = np.ascontiguousarray(rhs, dtype=self.solver_dtype)
-        it, worst = kernels.gmrf_cg(X, B, self.w, self.offsets, self._dw_s, self.curv, self._cs,
+        it, worst = kernels.gmrf_cg(X, B, self.w, self.op_offsets, self._dw_s, self.curv, self._cs,
                                     self._minv, tols,
                                     self.max_iter, Rr, P, Qp, Zr)
         self.stats.solves += 1
@@ -765,16 +776,16 @@ class GreyModel(ChainModel):
         reflect = self.reflect_scales and state.comp is not None  # a chain's first draw: plain
         if state.comp is None:
             state.comp = np.empty((self.ncomp, *self.grid.shape), np.uint8)
-        k = self.npair
+        npair = self.npair
         state.energy = float(kernels.gsm_draw_components(
-            state.x, self.y, self.dw, self.offsets[:k], self.logamp, self.prec, self.strength,
-            float(temperature), np.uint64(key), state.comp[:k], self.gs, reflect)
+            state.x, self.y, self.dw, self.offsets, self.logamp, self.prec, self.strength,
+            float(temperature), np.uint64(key), state.comp[:npair], self.gs, reflect)
         ) + self._curv_energy(state.x)
         if self.blocks is not None:
             la, pr, st = self.blocks
             state.energy += float(kernels.block_draw_components(
                 state.x, la, pr, st, float(temperature),
-                kernels.derive_key(np.uint64(key), kernels._GREY_BLOCK_SALT), state.comp[k:],
+                kernels.derive_key(np.uint64(key), kernels._GREY_BLOCK_SALT), state.comp[npair:],
                 self.gs, reflect))
 
     def _curv_energy(self, x):
@@ -801,18 +812,18 @@ class GreyModel(ChainModel):
                               kernels.derive_key(np.uint64(key), kernels._GREY_START_SALT))
         self._set_scales(state.comp)
         if temperature > 0:
-            k = self.npair
+            npair = self.npair
             if self._pbuf is None:
-                self._pbuf = np.empty_like(self.w[:k])
+                self._pbuf = np.empty_like(self.w[:npair])
                 self._bbuf = np.empty_like(self.bw)
                 if self.curv > 0:
                     self._cbuf = np.empty((2, *self.grid.shape), self.solver_dtype)
             noise_key = kernels.derive_key(np.uint64(key), kernels._GREY_NOISE_SALT)
-            kernels.gmrf_perturbation(self.w[:k], self.offsets[:k], self._dw_s, noise_key,
+            kernels.gmrf_perturbation(self.w[:npair], self.offsets, self._dw_s, noise_key,
                                       math.sqrt(temperature), self._rhs[1], self._pbuf,
                                       self.curv, self._cbuf, self._cs)
             if self.blocks is not None:  # counters after the pairs', data's and triples'
-                kernels.block_perturbation(self.bw, noise_key, (k + 3) * self.grid.size,
+                kernels.block_perturbation(self.bw, noise_key, (npair + 3) * self.grid.size,
                                            math.sqrt(temperature), self._rhs[1], self._bbuf)
             if state.draws < self.single_solves:
                 np.add(self._rhs[0], self._rhs[1], out=self._rhs[1])
@@ -845,12 +856,12 @@ class GreyModel(ChainModel):
         e_old = self.energy_of(state.x)
         state.mu[...] = state.x
         for k in range(1, max_passes + 1):
-            k = self.npair
-            kernels.gsm_mean_weights(state.x, self.offsets[:k], self.logamp, self.prec,
-                                     self.strength, self.w[:k], self.gs)
+            npair = self.npair
+            kernels.gsm_mean_weights(state.x, self.offsets, self.logamp, self.prec,
+                                     self.strength, self.w[:npair], self.gs)
             if self.blocks is not None:
                 la, pr, st = self.blocks
-                kernels.block_mean_weights(state.x, la, pr, st, self.bw, self.w[k:], self.gs)
+                kernels.block_mean_weights(state.x, la, pr, st, self.bw, self.w[npair:], self.gs)
             self._set_operator()
             X, _ = self.solve(self.b[None], state.x[None])
             e_new = self.energy_of(X[0])
@@ -899,7 +910,7 @@ class GreyModel(ChainModel):
 
     def prior_energy_of(self, x) -> float:
         x = self._as_image(x)
-        e = float(kernels.gsm_prior_energy(x, self.offsets[:self.npair], self.logamp, self.prec,
+        e = float(kernels.gsm_prior_energy(x, self.offsets, self.logamp, self.prec,
                                            self.strength, self.gs)) + self._curv_energy(x)
         if self.blocks is not None:
             e += float(kernels.block_prior_energy(x, *self.blocks, self.gs))
@@ -914,7 +925,8 @@ class GreyModel(ChainModel):
         return self.prior_energy_of(x) + self.data_energy_of(x)
 
     def conditional_mean(self, weights):
-        """``E[x | scales, y] = Q^-1 V^-1 y`` for clique weights of shape ``(n, Z, H, W)``."""
+        """``E[x | scales, y] = Q^-1 V^-1 y`` for clique weights of shape ``(n, Z, H, W)``, one
+        row per :attr:`op_offsets` (the blocks' pair weights included)."""
         self.w[...] = weights
         self._set_operator()
         X, _ = self.solve(self.b[None], self.y[None])
