@@ -105,19 +105,35 @@ def _case_psnr(job):
     from mrfclean.metrics import psnr
     from mrfclean.models.grey import GSMPrior
 
-    k, d = job
+    k, d, kw = job
     x, y = _CASES[k]
-    return psnr(x, clean_grey(y, prior=GSMPrior.from_dict(d), rng=1).mean, data_range=1.0)
+    return psnr(x, clean_grey(y, prior=GSMPrior.from_dict(d), rng=1, **kw).mean, data_range=1.0)
 
 
-def tune(prior, cases, *, steps, min_gain, workers, log=sys.stderr):
-    """Move the live mixture weights of ``prior`` to raise the cleaner's mean PSNR on ``cases``."""
+def _case_family(k):
+    from mrfclean.grey import clean_grey
+
+    return clean_grey(_CASES[k][1], rng=1).params["prior_family"]
+
+
+def routed(cases, family, workers):
+    """The cases for which the cleaner, everything on "auto", picks the prior ``family``."""
+    with Pool(workers, initializer=_worker_start, initargs=(cases,)) as pool:
+        got = pool.map(_case_family, range(len(cases)), chunksize=1)
+    return [c for c, f in zip(cases, got) if f == family]
+
+
+def tune(prior, cases, *, steps, min_gain, workers, clean_kw=None, log=sys.stderr):
+    """Move the live mixture weights of ``prior`` to raise the cleaner's mean PSNR on ``cases``
+    (``clean_grey(y, prior=..., rng=1, **clean_kw)``)."""
     comps = live_components(prior)
-    x0 = [prior.groups[g].logamp[c] for g, c in comps]
+    every = prior.groups + prior.blocks
+    x0 = [every[g].logamp[c] for g, c in comps]
+    kw = dict(clean_kw or {})
     with Pool(workers, initializer=_worker_start, initargs=(cases,)) as pool:
         def score(v):
             d = with_logamps(prior, comps, v).to_dict()
-            return float(np.mean(pool.map(_case_psnr, [(k, d) for k in range(len(cases))],
+            return float(np.mean(pool.map(_case_psnr, [(k, d, kw) for k in range(len(cases))],
                                           chunksize=1)))
 
         seen = []
@@ -129,7 +145,7 @@ def tune(prior, cases, *, steps, min_gain, workers, log=sys.stderr):
         x, best, n = coordinate_search(score, x0, steps, min_gain=min_gain, progress=progress)
     tuned = with_logamps(prior, comps, x)
     return tuned, {"start_psnr": round(seen[0], 4), "psnr": round(best, 4), "evaluations": n,
-                   "live": [[tuned.groups[g].name, c] for g, c in comps]}
+                   "live": [[(tuned.groups + tuned.blocks)[g].name, c] for g, c in comps]}
 
 
 def main(argv=None) -> int:
@@ -170,8 +186,14 @@ def main(argv=None) -> int:
                         blocks=args.blocks)
     d = prior.to_dict()
     if args.tune:
-        prior, record = tune(prior, tuning_cases(crop=args.tune_crop, seed=args.tune_seed),
-                             steps=args.tune_steps, min_gain=args.min_gain, workers=args.workers)
+        cases = tuning_cases(crop=args.tune_crop, seed=args.tune_seed)
+        kw = {}
+        if args.blocks:  # the cases the cleaner gives the block prior, as it runs it there
+            cases = routed(cases, "blocks", args.workers)
+            kw = {"curvature": 0.0}
+            print(f"{len(cases)} tuning cases routed to the block prior", file=sys.stderr)
+        prior, record = tune(prior, cases, steps=args.tune_steps, min_gain=args.min_gain,
+                             workers=args.workers, clean_kw=kw)
         d = prior.to_dict()
         d["source"] = ("score matching (Hyvarinen 2005), then weights tuned for the cleaner's "
                        "PSNR on the training images (pattern search, Hooke & Jeeves 1961)")
@@ -179,6 +201,9 @@ def main(argv=None) -> int:
                        "cases": "each image + Gaussian sigma 0.05, 0.1, 0.2 and Poisson-Gaussian "
                                 "(gain 0.01, read variance 4e-4)",
                        "steps": args.tune_steps, "min_gain_db": args.min_gain, **record}
+        if args.blocks:
+            d["tuning"]["cases"] += (f"; only the {len(cases)} the cleaner gives the block prior, "
+                                     "cleaned with curvature 0 from SURE's default start")
     d["training"] = {"images": [f"skimage.data.{n}" for n in TRAINING], "crop": args.crop,
                      "seed": args.seed, "downsample": args.downsample, "script": "scripts/learn_grey_prior.py",
                      "seconds": round(time.perf_counter() - t0, 1)}

@@ -621,13 +621,13 @@ def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
             assert [st.prior.strength, st.prior.curvature] in [t[:2] for t in d["sure_curvature"]]
         else:
             assert len(d["sure_curvature"]) == 2  # the risk without it and one try
-    # the shipped priors: tried with the smooth one, never with the textured one
-    # (chosen for images no smoother than usual)
+    # the shipped priors: tried with the smooth one, never with the textured or block ones
+    # (for images no smoother than usual)
     for x in (smooth, steps):
         y = (x + 0.1 * gen.standard_normal(x.shape))[None]
-        for prior in ("auto", "smooth", "textured"):
+        for prior in ("auto", "smooth", "textured", "blocks"):
             st = grey_setup(y, seed=3, prior=prior)
-            assert st.family in ("smooth", "textured") and (prior == "auto" or st.family == prior)
+            assert st.family in ("smooth", "blocks") if prior == "auto" else st.family == prior
             assert (len(st.curvature_table) > 0) == (st.family == "smooth")
             assert "curvature" in st.estimated
     given = GSMPrior.load().with_curvature(50.0)

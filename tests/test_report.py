@@ -329,7 +329,7 @@ def test_grey_card_shows_the_monte_carlo_error(tmp_path):
                   options=BatchOptions(workers=1, progress=False))
     mc = r.entries[0]["diagnostics"]["mc_error"]
     family = r.entries[0]["params"]["prior_family"]
-    assert 0 < mc < 1 and family in ("smooth", "textured")
+    assert 0 < mc < 1 and family in ("smooth", "textured", "blocks")
     with open(tmp_path / "out" / "summary.csv") as fh:  # the batch summary carries both too
         row = next(csv.DictReader(fh))
     assert float(row["mc_error"]) == pytest.approx(mc) and row["prior"] == family
