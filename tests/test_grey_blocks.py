@@ -22,6 +22,7 @@ from mrfclean import kernels, sampler
 from mrfclean.fit.grey import BLOCK_FILTERS, filter_score_matching_loss, score_matching_loss
 from mrfclean.models.grey import (BLOCK_FILTER_NAMES, BLOCK_PRIOR_FILE, BlockGroup, GreyModel,
                                   GSMPrior, PriorGroup)
+from test_grey_gmrf import mixture_moments  # the exact mixture moments both enumerations share
 
 # the filters written out from their definition (the Haar basis: A. Haar, "Zur Theorie der
 # orthogonalen Funktionensysteme", Mathematische Annalen 69 (1910) 331-371, from memory),
@@ -233,13 +234,7 @@ def block_scale_enumeration(model):
         v = v.ravel()
         Q += (lam[f] * pr[f][combos[:, c]])[:, None, None] * np.outer(v, v)[None]
         logw += la[f][combos[:, c]]
-    b = model.b.ravel()
-    mu = np.linalg.solve(Q, np.broadcast_to(b, (len(combos), n))[..., None])[..., 0]
-    logw += -np.log(np.diagonal(np.linalg.cholesky(Q), axis1=1, axis2=2)).sum(axis=1) + 0.5 * mu @ b
-    p = np.exp(logw - logw.max())
-    p /= p.sum()
-    ex2 = p @ (np.diagonal(np.linalg.inv(Q), axis1=1, axis2=2) + mu * mu)
-    return p @ mu, ex2, mu[np.argmax(p)]
+    return mixture_moments(Q, logw, model.b.ravel())
 
 
 @pytest.mark.slow

@@ -718,9 +718,16 @@ def scale_enumeration(model):
         Q[:, p, q] -= w
         Q[:, q, p] -= w
         logw += model.logamp[o][combos[:, c]]
-    b = model.b.ravel()
-    mu = np.linalg.solve(Q, np.broadcast_to(b, (len(combos), n))[..., None])[..., 0]
-    logw += -np.log(np.diagonal(np.linalg.cholesky(Q), axis1=1, axis2=2)).sum(axis=1) + 0.5 * mu @ b
+    return mixture_moments(Q, logw, model.b.ravel())
+
+
+def mixture_moments(Q, logw, b):
+    """Mean, ``E[x^2]`` and the most probable component's mean of the Gaussian mixture
+    ``sum_s w_s N(Q_s^-1 b, Q_s^-1)`` with ``w_s`` proportional to
+    ``exp(logw_s) |Q_s|^(-1/2) exp(b' Q_s^-1 b / 2)`` (the Gaussian integral over ``x`` of the
+    joint of scales and image; Rue & Held 2005, ch. 2); ``Q`` of shape ``(S, n, n)``."""
+    mu = np.linalg.solve(Q, np.broadcast_to(b, (len(Q), b.size))[..., None])[..., 0]
+    logw = logw - np.log(np.diagonal(np.linalg.cholesky(Q), axis1=1, axis2=2)).sum(axis=1) + 0.5 * mu @ b
     p = np.exp(logw - logw.max())
     p /= p.sum()
     ex2 = p @ (np.diagonal(np.linalg.inv(Q), axis1=1, axis2=2) + mu * mu)
