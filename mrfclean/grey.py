@@ -591,7 +591,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         if auto:
             estimated.append("prior")
     # the curvature term is tried only with the smooth prior (see SMOOTH_PRIOR_GATE)
-    tuned = choice in ("textured", "blocks")
+    no_curvature = choice in ("textured", "blocks")
     if choice:
         base = GSMPrior.load(shipped={"textured": TUNED_PRIOR_FILE,
                                       "blocks": BLOCK_PRIOR_FILE}.get(choice, PRIOR_FILE))
@@ -629,7 +629,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         estimated.append("strength")
     else:
         lam = _number("strength", strength, positive=False)
-    if curvature == "auto" and tuned:
+    if curvature == "auto" and no_curvature:
         setup.curvature_table = []  # not tried with the rough-image priors (SMOOTH_PRIOR_GATE)
         estimated.append("curvature")
     elif curvature == "auto":
