@@ -22,7 +22,7 @@ from mrfclean import kernels, sampler
 from mrfclean.fit.grey import BLOCK_FILTERS, filter_score_matching_loss, score_matching_loss
 from mrfclean.models.grey import (BLOCK_FILTER_NAMES, BLOCK_PRIOR_FILE, BlockGroup, GreyModel,
                                   GSMPrior, PriorGroup)
-from test_grey_gmrf import mixture_moments  # the exact mixture moments both enumerations share
+from test_grey_gmrf import assert_sampled_moments_match, mixture_moments  # shared with the pair prior's
 
 # the filters written out from their definition (the Haar basis: A. Haar, "Zur Theorie der
 # orthogonalen Funktionensysteme", Mathematische Annalen 69 (1910) 331-371, from memory),
@@ -249,22 +249,7 @@ def test_block_prior_moments_match_exact_scale_enumeration():
     y = np.array([[0.0, 0.22, 0.25], [0.04, 0.30, 0.18]])
     model = GreyModel(y, variance=0.05**2, prior=prior, tol=1e-10, single_solves=1)
     assert model.solver_dtype == np.float64
-    mean, ex2, mode_mean = block_scale_enumeration(model)
-    C, S, B, nb, n = 8, 2500, 10, 20, y.size
-    q1, q2 = np.empty((C, S, n)), np.empty((C, S, n))
-    for c in range(C):
-        for st in sampler.iterate(model, sampler.Constant(1.0), sweeps=S + B, chain=c, seed=12,
-                                  burn_in=B):
-            if st.sampling:
-                mu, x = st.state.mu.ravel(), st.state.x.ravel()
-                q1[c, st.sweep - B] = mu
-                q2[c, st.sweep - B] = (x - mu) ** 2 + mu * mu
-    for q, exact in ((q1, mean), (q2, ex2)):
-        batches = q.reshape(C, nb, S // nb, n).mean(axis=2).reshape(-1, n)
-        se = batches.std(axis=0, ddof=1) / np.sqrt(len(batches))
-        assert np.all(np.abs(batches.mean(axis=0) - exact) < 4 * se), (batches.mean(axis=0), exact, se)
-    se_mean = q1.reshape(C, nb, -1, n).mean(axis=2).reshape(-1, n).std(axis=0, ddof=1) / np.sqrt(C * nb)
-    assert np.max(np.abs(mode_mean - mean)) > 20 * np.max(se_mean)
+    assert_sampled_moments_match(model, *block_scale_enumeration(model))
 
 
 def test_filter_loss_on_difference_filters_is_the_pairwise_loss():

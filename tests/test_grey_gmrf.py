@@ -734,6 +734,29 @@ def mixture_moments(Q, logw, b):
     return p @ mu, ex2, mu[np.argmax(p)]
 
 
+def assert_sampled_moments_match(model, mean, ex2, mode_mean, *, C=8, S=2500, B=10, nb=20):
+    """The sampler's Rao-Blackwellised mean and ``E[x^2]`` against exact values: ``C`` chains
+    of ``B`` burn-in and ``S`` kept sweeps, cut into ``nb`` batches each; every moment must lie
+    within 4 standard errors of the ``C nb`` batch means, and the most probable scale
+    configuration's conditional mean ``mode_mean`` more than 20 away (so a sampler of the wrong
+    mixture fails)."""
+    n = model.y.size
+    q1, q2 = np.empty((C, S, n)), np.empty((C, S, n))
+    for c in range(C):
+        for st in sampler.iterate(model, sampler.Constant(1.0), sweeps=S + B, chain=c, seed=12,
+                                  burn_in=B):
+            if st.sampling:
+                mu, x = st.state.mu.ravel(), st.state.x.ravel()
+                q1[c, st.sweep - B] = mu
+                q2[c, st.sweep - B] = (x - mu) ** 2 + mu * mu
+    for q, exact in ((q1, mean), (q2, ex2)):
+        batches = q.reshape(C, nb, S // nb, n).mean(axis=2).reshape(-1, n)
+        se = batches.std(axis=0, ddof=1) / np.sqrt(len(batches))
+        assert np.all(np.abs(batches.mean(axis=0) - exact) < 4 * se), (batches.mean(axis=0), exact, se)
+    se_mean = q1.reshape(C, nb, -1, n).mean(axis=2).reshape(-1, n).std(axis=0, ddof=1) / np.sqrt(C * nb)
+    assert np.max(np.abs(mode_mean - mean)) > 20 * np.max(se_mean)
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize("relax, reflect", [(0.0, False), (-0.5, True)])
 def test_gsm_posterior_moments_match_exact_scale_enumeration(relax, reflect):
@@ -753,22 +776,7 @@ def test_gsm_posterior_moments_match_exact_scale_enumeration(relax, reflect):
     model = GreyModel(y, variance=0.05**2, prior=prior, tol=1e-10, relax=relax,
                       reflect_scales=reflect, single_solves=1)
     assert len(model.offsets) == 4 and model.solver_dtype == np.float64
-    mean, ex2, mode_mean = scale_enumeration(model)
-    C, S, B, nb = 8, 2500, 10, 20
-    q1, q2 = np.empty((C, S, 4)), np.empty((C, S, 4))
-    for c in range(C):
-        for st in sampler.iterate(model, sampler.Constant(1.0), sweeps=S + B, chain=c, seed=12,
-                                  burn_in=B):
-            if st.sampling:
-                mu, x = st.state.mu.ravel(), st.state.x.ravel()
-                q1[c, st.sweep - B] = mu
-                q2[c, st.sweep - B] = (x - mu) ** 2 + mu * mu
-    for q, exact in ((q1, mean), (q2, ex2)):
-        batches = q.reshape(C, nb, S // nb, 4).mean(axis=2).reshape(-1, 4)
-        se = batches.std(axis=0, ddof=1) / np.sqrt(len(batches))
-        assert np.all(np.abs(batches.mean(axis=0) - exact) < 4 * se), (batches.mean(axis=0), exact, se)
-    se_mean = q1.reshape(C, nb, -1, 4).mean(axis=2).reshape(-1, 4).std(axis=0, ddof=1) / np.sqrt(C * nb)
-    assert np.max(np.abs(mode_mean - mean)) > 20 * np.max(se_mean)
+    assert_sampled_moments_match(model, *scale_enumeration(model))
 
 
 def test_closing_mean_is_the_conditional_mean_of_the_last_scales():
