@@ -10,7 +10,7 @@ from skimage.util import img_as_float
 from mrfclean import sampler
 from mrfclean.fit.grey import (coordinate_search, live_components, score_matching_loss, sure,
                                with_logamps)
-from mrfclean.grey import clean_grey, credible_interval
+from mrfclean.grey import CURVATURE_MARGIN, clean_grey, credible_interval
 from mrfclean.metrics import psnr
 from mrfclean.models.grey import GreyModel, GSMPrior, PriorGroup
 
@@ -551,15 +551,43 @@ def test_sure_curvature_choice_against_exact_posterior_means(scene_kind):
         return exact(lam, kappa)
 
     prior = GSMPrior.quadratic(1.0, neighbourhood="4").with_strength(lam)
-    fit = choose_curvature(y, s * s, prior, start=2.0 / s**2, strength_factor=1.0, shift=1.0,
-                           seed=5, tol=1e-6, burn_in=2, samples=30)
     grid = [0.0] + list(2.0 ** np.arange(0, 14.01, 0.25))
     best = min(grid, key=mse)
-    if scene_kind == "smooth":
-        assert best > 0 and fit.curvature > 0
-        assert mse(fit.curvature) <= 1.02 * mse(best)
-    else:
-        assert best == 0.0 and fit.curvature == 0.0
+    # plain SURE, and with the allowance the cleaner gives the term (CURVATURE_MARGIN)
+    for margin in (0.0, CURVATURE_MARGIN):
+        fit = choose_curvature(y, s * s, prior, start=2.0 / s**2, strength_factor=1.0, shift=1.0,
+                               seed=5, tol=1e-6, burn_in=2, samples=30, margin=margin)
+        if scene_kind == "smooth":
+            assert best > 0 and fit.curvature > 0
+            assert mse(fit.curvature) <= 1.02 * mse(best)
+        else:
+            assert best == 0.0 and fit.curvature == 0.0
+
+
+def test_curvature_margin_moves_the_first_decision_by_exactly_its_allowance():
+    """``choose_curvature(margin=m)`` takes the term when the first point's SURE is below the
+    prior alone's plus ``m`` times the mean noise variance, and only then: on flat steps
+    (where plain SURE leaves it out) a margin just above the recorded difference takes it, one
+    just below does not.  The risks come from the same seeds in every call, so the
+    difference is the same number each time."""
+    from mrfclean.fit.grey import choose_curvature
+    from mrfclean.models.grey import GSMPrior
+
+    gen = np.random.default_rng(41)
+    ii, jj = np.mgrid[0:32, 0:32]
+    x = 0.2 + 0.6 * (((ii // 8) + (jj // 8)) % 2)
+    s = 0.1
+    y = x + s * gen.standard_normal(x.shape)
+    prior = GSMPrior.quadratic(1.0, neighbourhood="4").with_strength(60.0)
+    kw = dict(start=2.0 / s**2, strength_factor=1.0, shift=1.0, seed=5, tol=1e-6, burn_in=2,
+              samples=4)
+    plain = choose_curvature(y, s * s, prior, **kw)
+    assert plain.curvature == 0.0 and len(plain.table) == 2
+    (_, k0, none), (_, k1, first) = plain.table
+    assert k0 == 0.0 and k1 > 0 and first >= none
+    need = (first - none) / (s * s)
+    assert choose_curvature(y, s * s, prior, margin=need * 0.99, **kw).curvature == 0.0
+    assert choose_curvature(y, s * s, prior, margin=need * 1.01 + 1e-12, **kw).curvature > 0
 
 
 def test_curvature_walk_trades_strength_for_weight_against_exact_posterior_means():
