@@ -174,12 +174,15 @@ CURVATURE_GUESS = 2.0
 CURVATURE_STRENGTH = 1 / 3
 #: ... and taken there when SURE at that first point is below the prior alone's plus this
 #: many times the noise variance (per pixel, in the prior's units).  The walk's short
-#: chains read the prior alone's posterior variance lowest (stop 18 measured the bias on
-#: cell 256^2 at sigma 0.1: 2.5e-5 per pixel, 0.0013 sigma^2, with the final chains), so
-#: plain SURE leans against the term; the difference moves by about 0.001 sigma^2 from
-#: one random stream to another, and where it did the term won.  Measured at stop 25
-#: (DEVELOPERS.md) over two random streams: held-out cases the smooth prior serves +0.030 dB
-#: (2 of 8 gain, none lose), the 16 such training cases unchanged; 0.002 lost a held-out case.
+#: chains read the prior alone's posterior variance lowest, so plain SURE leans against
+#: the term (stop 18 measured the bias with the final chains on cell 256^2 at sigma 0.1:
+#: 2.5e-5 per pixel in the prior's units, 0.0013 times the noise variance there).  Near a
+#: tie the decision flips with the random stream (over three SURE seeds the difference
+#: moved by about 0.001 noise variances), and where it flipped the term mostly won.
+#: Measured at stop 25 (DEVELOPERS.md): of 11 decisions this margin flipped (held-out,
+#: training and benchmark images, several random streams) 10 gained (+0.05 to +1.55 dB)
+#: and one lost 0.03; held-out cases the smooth prior serves +0.030 dB on average over
+#: six streams; 0.002 lost 0.29 dB on a held-out case.
 CURVATURE_MARGIN = 1e-3
 #: With strength, curvature and prior on "auto", :data:`ROUGH_PRIOR` (the block
 #: prior; until stop 24 the prior tuned for denoising, "textured") serves images whose
