@@ -82,8 +82,10 @@ def main(argv=None) -> int:
     with Pool(max(1, args.workers), initializer=_start, initargs=(cases,)) as pool:
         first = pool.map(_one, [(k, 0.0, args.rng[0]) for k in range(len(cases))], chunksize=1)
         ks = [k for k, r in enumerate(first) if r[2] == "smooth"]
-        jobs = [(k, m, r) for k in ks for m in (0.0, args.margin) for r in args.rng]
-        res = dict(zip(jobs, pool.map(_one, jobs, chunksize=1)))
+        res = {(k, 0.0, args.rng[0]): first[k] for k in ks}  # the routing pass, reused
+        jobs = [(k, m, r) for k in ks for m in (0.0, args.margin) for r in args.rng
+                if (k, m, r) not in res]
+        res.update(zip(jobs, pool.map(_one, jobs, chunksize=1)))
     diffs, flips = [], []
     for k in ks:
         for r in args.rng:
