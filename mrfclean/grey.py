@@ -17,7 +17,7 @@ from scipy import ndimage, special
 from . import levels as lv
 from .estimates import CleanResult, Diagnostics, anneal, record_posterior, sample_posterior
 from .fit.grey import (FLATTEST_SHARE, choose_curvature, choose_strength, estimate_poisson_gaussian,
-                       estimate_sigma, signal_roughness)
+                       estimate_sigma, signal_roughness, sure_at)
 from .lattice import Grid
 from .models.grey import (BLOCK_PRIOR_FILE, PRIOR_FILE, TUNED_PRIOR_FILE, GaussianNoise, GreyModel,
                           GSMPrior, PoissonGaussianNoise)
@@ -184,6 +184,18 @@ CURVATURE_STRENGTH = 1 / 3
 #: and one lost 0.03; held-out cases the smooth prior serves +0.030 dB on average over
 #: six streams; 0.002 lost 0.29 dB on a held-out case.
 CURVATURE_MARGIN = 1e-3
+#: With strength, curvature and prior on "auto", an image routed to the smooth prior
+#: (a 2-D one) also gets one SURE risk of the block prior at this many times the
+#: strength the smooth prior's walk chose, read on the same windows with the same
+#: random numbers; it is taken, at that strength, when that risk is below the risk of
+#: what the smooth prior chose (with or without the curvature term).  One risk, not
+#: a walk: a walk from there cost as much again as the whole setup, and the single
+#: point scored about as well.  Measured at stop 26 (DEVELOPERS.md) on the images
+#: "auto" sends to the smooth prior: training crops (384^2, seeds 5, 6 and 8), the
+#: block prior at 2x gained on all 24 such cases (+0.44 to +1.11 dB) and SURE took it
+#: on 20; held-out images it took it on 3 of 8 (+0.41, +0.14, -0.01) and kept the
+#: curvature term on the other five.  0 turns the trial off.
+BLOCK_SWITCH = 2.0
 #: With strength, curvature and prior on "auto", :data:`ROUGH_PRIOR` (the block
 #: prior; until stop 24 the prior tuned for denoising, "textured") serves images whose
 #: roughness predicts a strength for the score-matching
@@ -492,6 +504,7 @@ class GreySetup:
     curvature_table: list | None = None
     sure_strength: float | None = None
     sure_walk: list | None = None
+    block_trial: list | None = None
     family: str = "given"  # "smooth", "textured" or "blocks" (a shipped prior) or "given"
 
     def observed(self, y, smooth=None):
@@ -511,6 +524,8 @@ class GreySetup:
             d["sure_strength"] = self.sure_strength
         if self.curvature_table is not None:
             d["sure_curvature"] = self.curvature_table
+        if self.block_trial is not None:
+            d["sure_blocks"] = self.block_trial
         if self.noise_curve is not None:
             d["noise_curve"] = self.noise_curve
         return d
@@ -594,8 +609,10 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     # the curvature term (with the tuned one it cannot; measured at stop 15, see
     # TUNED_STRENGTH_START and DEVELOPERS.md).  Smoother: the strength the image's
     # roughness predicts for the score-matching prior is above the gate.
+    routed = False  # the prior was chosen here by roughness (see BLOCK_SWITCH)
     if choice == "auto":
         auto = strength == "auto" and curvature == "auto"
+        routed = auto
         # a volume needs a z potential, which the block prior has not
         rough = ROUGH_PRIOR if y.shape[0] == 1 else "textured"
         choice = (rough if auto and strength_start(noise_sd, roughness)
@@ -659,6 +676,16 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
         if cfit.curvature > 0:
             base = base.with_curvature(cfit.curvature)
             lam = cfit.strength  # the term took over part of the smoothing
+        elif routed and y.shape[0] == 1 and BLOCK_SWITCH > 0:
+            # the term was not taken: one risk of the block prior against the prior alone's
+            chosen = cfit.table[0][2]
+            trial = BLOCK_SWITCH * setup.sure_strength
+            bprior = (GSMPrior.load(shipped=BLOCK_PRIOR_FILE).with_noise_ref(base.noise_ref)
+                      .with_curvature(0.0).with_strength(trial))
+            brisk = sure_at(u, var_u, bprior, seed=sseed, tol=tol, reflect=SURE_REFLECT)
+            setup.block_trial = [float(trial), float(brisk)]
+            if brisk < chosen:
+                base, lam, setup.family = bprior, trial, "blocks"
     setup.prior = base.with_strength(lam)
     return setup
 

@@ -379,6 +379,27 @@ def test_window_risk_matches_exact_sure_of_a_quadratic_prior(chains):
     assert got == pytest.approx(np.mean(risks), rel=0.07)
 
 
+def test_single_risk_is_the_risk_the_strength_walk_reads():
+    """:func:`sure_at` reads one prior's SURE on the windows, chains and seeds of
+    :func:`choose_strength`, so at each strength the walk tried it gives the walk's own
+    plain SURE (``StrengthFit.sure``) to the last bit; those risks are checked against
+    exact SURE above.  Another seed gives another number (the seed reaches the chains)."""
+    from mrfclean.fit.grey import choose_strength, sure_at
+    from mrfclean.models.grey import GSMPrior
+
+    gen = np.random.default_rng(14)
+    ii, jj = np.mgrid[0:96, 0:96]
+    x = 0.5 + 0.3 * np.sin(ii / 5.0) * np.cos(jj / 7.0)
+    y = (x + 0.1 * gen.standard_normal(x.shape))[None]
+    prior = GSMPrior.load()
+    fit = choose_strength(y, 0.01, prior, start=0.5, seed=9, crop=32)
+    assert len(fit.sure) >= 3
+    for lam, risk in fit.sure:
+        assert sure_at(y, 0.01, prior.with_strength(lam), seed=9, crop=32) == risk
+    lam, risk = fit.sure[0]
+    assert sure_at(y, 0.01, prior.with_strength(lam), seed=10, crop=32) != risk
+
+
 @pytest.mark.parametrize("reflect", [False, True])
 def test_window_risk_matches_exact_sure_of_a_gsm_posterior(reflect):
     """The SURE windows' risk with the shipped 8-scale prior, plain and with mirrored scale
@@ -662,7 +683,9 @@ def test_setup_chooses_curvature_on_a_smooth_scene_and_not_on_steps():
         for prior in ("auto", "smooth", "textured", "blocks"):
             st = grey_setup(y, seed=3, prior=prior)
             assert st.family in ("smooth", "blocks") if prior == "auto" else st.family == prior
-            assert (len(st.curvature_table) > 0) == (st.family == "smooth")
+            # the block prior after the smooth prior's trials (BLOCK_SWITCH) carries their table
+            assert (len(st.curvature_table) > 0) == (st.family == "smooth"
+                                                     or st.block_trial is not None)
             assert "curvature" in st.estimated
     given = GSMPrior.load().with_curvature(50.0)
     y = (steps + 0.1 * gen.standard_normal(steps.shape))[None]
@@ -693,10 +716,14 @@ def test_nothing_set_picks_the_block_prior_unless_the_image_is_smoother_than_usu
     # the noise level, 6.8 times on cell (gate 3.16)
     assert usual == (name != "cell")
     rough = GSMPrior.load(shipped=BLOCK_PRIOR_FILE)
-    assert (st.prior.blocks == rough.blocks and st.prior.groups == ()) == usual
-    assert (st.prior.groups == GSMPrior.load().groups) == (not usual)
+    # a smoother image may still end on the block prior, by SURE after the smooth prior's
+    # trials (BLOCK_SWITCH; see the next test); the rough ones never try the smooth prior
+    switched = st.block_trial is not None and st.family == "blocks"
+    assert (st.block_trial is None) == usual
+    assert (st.prior.blocks == rough.blocks and st.prior.groups == ()) == (usual or switched)
+    assert (st.prior.groups == GSMPrior.load().groups) == (not usual and not switched)
     assert "prior" in st.estimated
-    assert st.describe()["prior_family"] == ("blocks" if usual else "smooth")
+    assert st.describe()["prior_family"] == ("blocks" if usual or switched else "smooth")
     if usual:
         assert st.curvature_table == [] and st.prior.curvature == 0
         # its walk starts from the line fitted for it (the first risk is at the start)
@@ -710,6 +737,52 @@ def test_nothing_set_picks_the_block_prior_unless_the_image_is_smoother_than_usu
         other = grey_setup(y, seed=2, **kw)
         assert other.prior.groups == GSMPrior.load().groups and "prior" not in other.estimated
         assert other.family == ("given" if "prior" in kw else "smooth")
+
+
+def test_smooth_routed_images_try_the_block_prior_once_and_take_it_by_sure():
+    """An image "auto" sends to the smooth prior, where SURE leaves the curvature term
+    out, gets one SURE risk of the block prior at BLOCK_SWITCH times the smooth walk's
+    strength (logged as ``sure_blocks``), and the block prior at that strength when the
+    risk is below the prior alone's (the curvature table's first row); an image that
+    takes the term, a given prior or strength, and ``BLOCK_SWITCH = 0`` get no trial.
+    A 192^2 crop of skimage.data cell: at sigma 0.1 (two noise draws) SURE left the term
+    out and took the block prior, at sigma 0.05 it took the term (measured when this was
+    written), so both ways are exercised."""
+    from mrfclean import grey as G
+    from mrfclean.models.grey import BLOCK_PRIOR_FILE
+
+    blocks = GSMPrior.load(shipped=BLOCK_PRIOR_FILE)
+    x = img_as_float(skimage.data.cell())
+    i, j = (x.shape[0] - 192) // 2, (x.shape[1] - 192) // 2
+    x = x[i:i + 192, j:j + 192]
+    switched = 0
+    for k in (5, 20):
+        y = (x + 0.1 * np.random.default_rng(k).standard_normal(x.shape))[None]
+        st = G.grey_setup(y, seed=2)
+        assert st.prior.curvature == 0 and st.curvature_table[0][1] == 0.0
+        trial, risk = st.describe()["sure_blocks"]
+        assert trial == G.BLOCK_SWITCH * st.sure_strength
+        took = risk < st.curvature_table[0][2]
+        assert st.family == ("blocks" if took else "smooth")
+        if took:
+            assert st.prior.blocks == blocks.blocks and st.prior.groups == ()
+            assert st.prior.strength == trial and st.prior.curvature == 0
+        switched += took
+    assert switched == 2
+    # no trial where the curvature term is taken, for a given prior or strength, or when off
+    ys = (x + 0.05 * np.random.default_rng(5).standard_normal(x.shape))[None]
+    st = G.grey_setup(ys, seed=2)
+    assert st.family == "smooth" and st.prior.curvature > 0 and st.block_trial is None
+    for kw in ({"prior": "smooth"}, {"strength": 0.5}):
+        other = G.grey_setup(y, seed=2, **kw)
+        assert other.family == "smooth" and other.block_trial is None
+    switch = G.BLOCK_SWITCH
+    try:
+        G.BLOCK_SWITCH = 0.0
+        off = G.grey_setup(y, seed=2)
+    finally:
+        G.BLOCK_SWITCH = switch
+    assert off.family == "smooth" and off.block_trial is None and "sure_blocks" not in off.describe()
 
 
 @pytest.mark.filterwarnings("ignore::mrfclean.diagnostics.ChainsDisagree")  # short chains

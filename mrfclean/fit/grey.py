@@ -841,6 +841,36 @@ def choose_strength(observed, variance, prior: GSMPrior, *, start=0.5, step=2.0,
     return StrengthFit(best, table, [[v, plain[v]] for v, _ in table])
 
 
+def sure_at(observed, variance, prior: GSMPrior, *, crop="auto", crops=4, burn_in=2, samples=2,
+            chains=3, seed=0, tol=1e-3, reflect=False) -> float:
+    """Plain SURE per pixel of ``prior`` as it is, read as :func:`choose_strength` reads each risk.
+
+    Windows, chains, sweeps and seeds are those of :func:`choose_strength`, so
+    the value is comparable with its ``sure`` table (and with
+    :func:`choose_curvature`'s risks) for the same image and ``seed``, whatever
+    the prior.
+
+    Parameters
+    ----------
+    observed, variance, crop, crops, burn_in, samples, chains, seed, tol, reflect
+        As for :func:`choose_strength`.
+    prior : GSMPrior
+        Prior at the strength to read (its own strength and curvature are used).
+
+    Returns
+    -------
+    float
+        SURE per pixel over the windows (:func:`sure`).
+
+    References
+    ----------
+    .. [1] C. M. Stein, Annals of Statistics 9 (1981) 1135-1151.
+    """
+    blocks = _sure_blocks(observed, variance, crop, crops, chains)
+    return _sure_risk(blocks, prior.with_strength(float(prior.strength), blocks[0][2]), seed=seed,
+                      burn_in=burn_in, samples=samples, chains=chains, tol=tol, reflect=reflect)
+
+
 def _sure_blocks(observed, variance, crop, crops, chains):
     """The SURE windows of an image: ``[(y, v, strength_z, starts)]`` (see :func:`choose_strength`).
 
