@@ -31,7 +31,9 @@ NOISES = ("auto", "gaussian", "poisson-gaussian")
 #: images, :data:`mrfclean.models.grey.TUNED_PRIOR_FILE`) and ``"blocks"`` (score matching
 #: on the 2 x 2 block filters, :data:`mrfclean.models.grey.BLOCK_PRIOR_FILE`; 2-D only);
 #: ``"auto"`` picks "smooth" or :data:`ROUGH_PRIOR` ("blocks"; "textured" for a volume)
-#: from the image's roughness (see :func:`grey_setup`).  Only "smooth" tries the curvature term.
+#: from the image's roughness, and after the smooth prior's trials may still take
+#: "blocks" by SURE (:data:`BLOCK_SWITCH`; see :func:`grey_setup`).  Only "smooth" tries
+#: the curvature term.
 PRIORS = ("auto", "smooth", "textured", "blocks")
 
 #: Defaults chosen with scripts/bench_grey.py (see README, "Benchmarks").  Chain
@@ -184,17 +186,22 @@ CURVATURE_STRENGTH = 1 / 3
 #: and one lost 0.03; held-out cases the smooth prior serves +0.030 dB on average over
 #: six streams; 0.002 lost 0.29 dB on a held-out case.
 CURVATURE_MARGIN = 1e-3
-#: With strength, curvature and prior on "auto", an image routed to the smooth prior
-#: (a 2-D one) also gets one SURE risk of the block prior at this many times the
-#: strength the smooth prior's walk chose, read on the same windows with the same
-#: random numbers; it is taken, at that strength, when that risk is below the risk of
-#: what the smooth prior chose (with or without the curvature term).  One risk, not
-#: a walk: a walk from there cost as much again as the whole setup, and the single
-#: point scored about as well.  Measured at stop 26 (DEVELOPERS.md) on the images
-#: "auto" sends to the smooth prior: training crops (384^2, seeds 5, 6 and 8), the
-#: block prior at 2x gained on all 24 such cases (+0.44 to +1.11 dB) and SURE took it
-#: on 20; held-out images it took it on 3 of 8 (+0.41, +0.14, -0.01) and kept the
-#: curvature term on the other five.  0 turns the trial off.
+#: With strength, curvature and prior on "auto", a 2-D image routed to the smooth prior
+#: whose SURE leaves the curvature term out also gets one SURE risk of the block prior
+#: at this many times the strength the smooth prior's walk chose, read on the same
+#: windows, chains and seed (the two priors lay out their random numbers differently,
+#: so the draws are not common); it takes the block prior at that strength when that
+#: risk is below the prior alone's least risk.  One risk, not a walk: a walk from there
+#: cost as much again as the whole setup, and the single point scored about as well.
+#: Short chains bias SURE differently for different priors (stop 17), so this rests on
+#: what it did, measured at stop 26 (DEVELOPERS.md) on the images "auto" sends to the
+#: smooth prior: training crops (384^2, seeds 5, 6 and 8; no case took the term) the
+#: block prior at 2x gained on all 24 (+0.44 to +1.11 dB) and SURE took it on 20 (all
+#: gains); held-out images, where five of eight took the term, it took it on the other
+#: two (+0.41, +0.14 dB); the benchmark (evidence only) +0.018 dB, moon +0.16 to
+#: +0.34, cell at sigma 0.1-0.2 at 256^2 -0.39 and -0.17.  Time: the same within 0.2%
+#: on seven 512^2 cell and moon cleans (the switched cases' chains are cheaper).
+#: 0 turns the trial off.
 BLOCK_SWITCH = 2.0
 #: With strength, curvature and prior on "auto", :data:`ROUGH_PRIOR` (the block
 #: prior; until stop 24 the prior tuned for denoising, "textured") serves images whose
@@ -397,7 +404,9 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
         ``"blocks"`` (``"textured"`` for a volume) for an image no smoother
         than the training images (its roughness predicts a strength below
         :data:`SMOOTH_PRIOR_GATE` times the usual one) and ``"smooth"`` for
-        a smoother one, logging ``prior`` in ``estimated``; with a strength
+        a smoother one; a smoother 2-D image that SURE gives no curvature
+        term then takes ``"blocks"`` if SURE prefers it (one risk, see
+        :data:`BLOCK_SWITCH`, logged as ``sure_blocks``); ``prior`` is logged in ``estimated``; with a strength
         or curvature set by hand it is ``"smooth"``.  The rule can pick
         wrong: on the Shepp-Logan phantom (flat regions, sharp edges) it picks
         the rough-image prior, below ``"smooth"`` by 1.1-2.3 dB
@@ -489,7 +498,10 @@ class GreySetup:
     ``noise_curve`` record how the strength, the curvature weight and the noise
     were chosen (None when given);
     ``sure_strength`` is the strength SURE chose before the curvature term was
-    tried (the prior's own strength unless the term was taken); ``family`` is
+    tried (the prior's own strength unless the term was taken or the block prior
+    replaced it); ``block_trial`` is ``[strength, SURE]`` of the block prior's one
+    risk after the smooth prior's trials (:data:`BLOCK_SWITCH`; then the other tables
+    describe the smooth prior's trials); ``family`` is
     ``"smooth"``, ``"textured"`` or ``"blocks"`` (a shipped prior, see :data:`PRIORS`) or
     ``"given"``.
     """
@@ -605,10 +617,11 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
     # With strength and curvature on "auto" and no prior named, an image no smoother
     # than the training images gets ROUGH_PRIOR (the block prior; a volume the prior
     # tuned for denoising on them, "textured");
-    # a smoother one keeps the score-matching prior ("smooth"), with which SURE can judge
-    # the curvature term (with the tuned one it cannot; measured at stop 15, see
-    # TUNED_STRENGTH_START and DEVELOPERS.md).  Smoother: the strength the image's
-    # roughness predicts for the score-matching prior is above the gate.
+    # a smoother one starts with the score-matching prior ("smooth"), with which SURE can
+    # judge the curvature term (with the tuned one it cannot; measured at stop 15, see
+    # TUNED_STRENGTH_START and DEVELOPERS.md), and may still end on the block prior
+    # (BLOCK_SWITCH).  Smoother: the strength the image's roughness predicts for the
+    # score-matching prior is above the gate.
     routed = False  # the prior was chosen here by roughness (see BLOCK_SWITCH)
     if choice == "auto":
         auto = strength == "auto" and curvature == "auto"
@@ -682,7 +695,7 @@ def grey_setup(y, *, noise="auto", sigma="auto", gain="auto", read_variance="aut
             trial = BLOCK_SWITCH * setup.sure_strength
             bprior = (GSMPrior.load(shipped=BLOCK_PRIOR_FILE).with_noise_ref(base.noise_ref)
                       .with_curvature(0.0).with_strength(trial))
-            brisk = sure_at(u, var_u, bprior, seed=sseed, tol=tol, reflect=SURE_REFLECT)
+            brisk = sure_at(u, var_u, bprior, seed=sseed, tol=tol)  # plain, as the term's risks
             setup.block_trial = [float(trial), float(brisk)]
             if brisk < chosen:
                 base, lam, setup.family = bprior, trial, "blocks"
