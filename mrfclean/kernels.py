@@ -1681,9 +1681,101 @@ def _curv_row_scaled(src, cs, z, i, curv, out):
 
 
 @njit(inline="always", cache=True)
+def _is_grid8(offsets):
+    """True for the in-plane 8-neighbourhood in the order the shipped priors use:
+    ``(0, 0, 1), (0, 1, 0), (0, 1, 1), (0, 1, -1)`` (:func:`_q_row8`'s layout)."""
+    if offsets.shape[0] != 4:
+        return False
+    for o in range(4):
+        if offsets[o, 0] != 0:
+            return False
+    return (offsets[0, 1] == 0 and offsets[0, 2] == 1 and offsets[1, 1] == 1 and offsets[1, 2] == 0
+            and offsets[2, 1] == 1 and offsets[2, 2] == 1 and offsets[3, 1] == 1
+            and offsets[3, 2] == -1)
+
+
+@njit(inline="always", cache=True)
+def _q_edge8(x, d, up, dn, w0, w1u, w1, w2u, w2, w3u, w3, j, W):
+    """Pixel ``j`` of :func:`_q_row8` at a row end: the terms that exist, in the same order."""
+    a = d[j] * x[j]
+    if j + 1 < W:
+        a += w0[j] * (x[j] - x[j + 1])
+    if j >= 1:
+        a += w0[j - 1] * (x[j] - x[j - 1])
+    a += w1[j] * (x[j] - dn[j])
+    a += w1u[j] * (x[j] - up[j])
+    if j + 1 < W:
+        a += w2[j] * (x[j] - dn[j + 1])
+    if j >= 1:
+        a += w2u[j - 1] * (x[j] - up[j - 1])
+    if j >= 1:
+        a += w3[j] * (x[j] - dn[j - 1])
+    if j + 1 < W:
+        a += w3u[j + 1] * (x[j] - up[j + 1])
+    return a
+
+
+@njit(inline="always", cache=True)
+def _q_row8(src, w, dw, z, i, out):
+    """Row ``(z, i)`` of ``Q src`` without the curvature term, for the 8-neighbourhood of
+    :func:`_is_grid8` and an interior row (``1 <= i < H - 1``, ``W >= 3``).
+
+    The same sums as the general loop of :func:`_q_row` in the same order per pixel
+    (the diagonal, then each offset's forward and backward clique), so the result is
+    bit-identical; but one pass over the row instead of nine, each pixel's sum kept in a
+    register (on a 512^2 plane the product ran about 2x faster, measured at stop 26).
+    """
+    W = src.shape[2]
+    x = src[z, i]
+    up = src[z, i - 1]
+    dn = src[z, i + 1]
+    d = dw[z, i]
+    w0 = w[0, z, i]
+    w1 = w[1, z, i]
+    w2 = w[2, z, i]
+    w3 = w[3, z, i]
+    w1u = w[1, z, i - 1]
+    w2u = w[2, z, i - 1]
+    w3u = w[3, z, i - 1]
+    out[0] = _q_edge8(x, d, up, dn, w0, w1u, w1, w2u, w2, w3u, w3, 0, W)
+    out[W - 1] = _q_edge8(x, d, up, dn, w0, w1u, w1, w2u, w2, w3u, w3, W - 1, W)
+    # pixel j = t + 1 over slices starting at 0 (vectorises, see _clique_rows)
+    m = W - 2
+    o = out[1:W - 1]
+    xc, xl, xr = x[1:W - 1], x[0:W - 2], x[2:W]
+    uc, ul, ur = up[1:W - 1], up[0:W - 2], up[2:W]
+    dc, dl, dr = dn[1:W - 1], dn[0:W - 2], dn[2:W]
+    dd = d[1:W - 1]
+    a0c, a0l = w0[1:W - 1], w0[0:W - 2]
+    a1c, a1u = w1[1:W - 1], w1u[1:W - 1]
+    a2c, a2u = w2[1:W - 1], w2u[0:W - 2]
+    a3c, a3u = w3[1:W - 1], w3u[2:W]
+    for t in range(m):
+        c = xc[t]
+        a = dd[t] * c
+        a += a0c[t] * (c - xr[t])
+        a += a0l[t] * (c - xl[t])
+        a += a1c[t] * (c - dc[t])
+        a += a1u[t] * (c - uc[t])
+        a += a2c[t] * (c - dr[t])
+        a += a2u[t] * (c - ul[t])
+        a += a3c[t] * (c - dl[t])
+        a += a3u[t] * (c - ur[t])
+        o[t] = a
+
+
+@njit(inline="always", cache=True)
 def _q_row(src, w, offsets, dw, curv, cs, z, i, out):
     """Row ``(z, i)`` of ``Q src`` into ``out`` (see :func:`gmrf_matvec`)."""
     Z, H, W = src.shape
+    if 1 <= i < H - 1 and W >= 3 and _is_grid8(offsets):
+        _q_row8(src, w, dw, z, i, out)
+        if curv > 0.0:
+            if cs.shape[0] > 0:
+                _curv_row_scaled(src, cs, z, i, curv, out)
+            else:
+                _curv_row(src, z, i, curv, out)
+        return
     n = offsets.shape[0]
     xrow = src[z, i]
     drow = dw[z, i]

@@ -75,7 +75,9 @@ def sparse_precision(model, weights):
 
 
 @pytest.mark.parametrize("shape, neighbourhood", [((1, 12, 13), "20"), ((3, 7, 9), "8"),
-                                                  ((1, 3, 5), "4"), ((2, 6, 4), "8")])
+                                                  ((1, 3, 5), "4"), ((2, 6, 4), "8"),
+                                                  ((1, 9, 11), "8"), ((1, 3, 3), "8"),
+                                                  ((1, 2, 6), "8")])
 @pytest.mark.parametrize("tol, dtype, rtol", [(1e-9, np.float64, 1e-12), (1e-3, np.float32, 2e-6)])
 @pytest.mark.parametrize("curvature, noise_ref", [(0.0, 0.0), (2.5, 0.0), (2.5, 0.7)])
 def test_operator_matches_sparse_matrix(shape, neighbourhood, tol, dtype, rtol, curvature,
@@ -83,6 +85,8 @@ def test_operator_matches_sparse_matrix(shape, neighbourhood, tol, dtype, rtol, 
     """Matrix-free ``Q x`` and ``diag Q`` equal the assembled sparse matrix (round-off only),
     with and without the second-difference term, and with its triples weighted by a
     noise-stabilised prior's factor (``noise_ref``; the clique weights here are given).
+    Planes with the in-plane 8-neighbourhood take the kernels' one-pass row
+    (``kernels._q_row8``) on their interior rows; the other shapes, the general loop.
 
     ``apply`` works in float64 always; the solver's diagonal is float32 for the
     usual tolerances (rounding of about 20 float32 terms: within 2e-6 relative)."""
