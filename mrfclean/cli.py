@@ -137,7 +137,8 @@ def add_model_options(p):
                         "2 x 2 blocks: texture and fine detail; 2-D only) or textured (the "
                         "pairwise prior tuned for texture) (default auto: smooth or, for an "
                         "image no smoother than the training images, blocks (textured for a "
-                        "volume); smooth when --strength or --curvature is set)")
+                        "volume), and blocks after all when SURE prefers them to smooth without "
+                        "the ramp term; smooth when --strength or --curvature is set)")
     m.add_argument("--boundary", choices=("free", "periodic"), help="lattice boundary (default free)")
     m.add_argument("--stack", choices=("volume", "planes"),
                    help="a stack of planes is one 3-D volume, z coupling from the voxel size "
