@@ -20,16 +20,12 @@ Example
 from __future__ import annotations
 
 import argparse
-import math
 import os
 import sys
-from multiprocessing import Pool
-
-import numpy as np
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
-from curvature_allowance import _CASES, _start, load  # noqa: E402  (same sets, same workers)
+from curvature_allowance import _CASES, load, mean_line, paired_runs  # noqa: E402  (same sets)
 
 
 def _one(job):
@@ -55,14 +51,9 @@ def main(argv=None) -> int:
     p.add_argument("--workers", type=int, default=2)
     args = p.parse_args(argv)
     cases = load(args.set)
-    with Pool(max(1, args.workers), initializer=_start, initargs=(cases,)) as pool:
-        first = pool.map(_one, [(k, 0.0, args.rng[0]) for k in range(len(cases))], chunksize=1)
-        # the cases the trial can touch: smooth prior, no curvature term (with the trial off)
-        ks = [k for k, r in enumerate(first) if r[1] == "smooth"]
-        res = {(k, 0.0, args.rng[0]): first[k] for k in ks}  # the routing pass, reused
-        jobs = [(k, f, r) for k in ks for f in (0.0, args.factor) for r in args.rng
-                if (k, f, r) not in res]
-        res.update(zip(jobs, pool.map(_one, jobs, chunksize=1)))
+    # the cases the trial can touch: the smooth prior with the trial off
+    ks, res = paired_runs(cases, _one, (0.0, args.factor), args.rng, lambda r: r[1] == "smooth",
+                          args.workers)
     diffs, switched = [], []
     for k in ks:
         for r in args.rng:
@@ -72,13 +63,11 @@ def main(argv=None) -> int:
                 switched.append(p1 - p0)
                 print(f"{cases[k][0]:24s} rng {r}: smooth (curvature {c0:.3g}) -> blocks, "
                       f"{p0:.3f} -> {p1:.3f} dB ({p1 - p0:+.3f})")
-    d = np.array(diffs)
-    if not len(d):
+    if not diffs:
         print(f"{args.set}: no case gets the smooth prior")
         return 0
-    se = d.std(ddof=1) / math.sqrt(len(d)) if len(d) > 1 else float("nan")
     print(f"{args.set}: {len(ks)} smooth-prior cases x {len(args.rng)} streams, trial at "
-          f"{args.factor:g} x against none: mean {d.mean():+.4f} dB (s.e. {se:.4f}); "
+          f"{args.factor:g} x against none: {mean_line(diffs)}; "
           f"{len(switched)} switched to blocks, {sum(f > 0 for f in switched)} gained, "
           f"{sum(f < 0 for f in switched)} lost")
     return 0

@@ -13,9 +13,13 @@ Sets: ``heldout`` (the images of scripts/heldout_grey.py) and ``trainN`` (the
 tuning cases of scripts/learn_grey_prior.py at 384^2 with seed N); never the
 benchmark's images.  Runs go in parallel, one kernel thread per worker.
 
+Since stop 26 a case the term leaves out may switch to the block prior
+(``grey.BLOCK_SWITCH``), so fewer cases stay on the smooth prior;
+``--no-block-trial`` measures as stop 25 did.
+
 Example
 -------
-    python scripts/curvature_allowance.py heldout --rng 1 2 3 4 5 6
+    python scripts/curvature_allowance.py heldout --rng 1 2 3 4 5 6 --no-block-trial
 """
 
 from __future__ import annotations
@@ -48,12 +52,41 @@ def load(which):
     raise SystemExit(f"{which}: unknown set (heldout or trainN)")
 
 
-def _start(cases):
+def _start(cases, settings=None):
+    """Worker set-up: one kernel thread, the cases, and ``settings`` (``{name: value}`` of
+    ``mrfclean.grey`` constants) applied."""
     import numba
+
+    import mrfclean.grey as grey
 
     numba.set_num_threads(1)  # one kernel thread per worker: the workers share the cores
     warnings.simplefilter("ignore")  # chains-disagree notes
     _CASES[:] = cases
+    for name, value in (settings or {}).items():
+        setattr(grey, name, value)
+
+
+def paired_runs(cases, one, values, rngs, keep, workers=2, settings=None):
+    """Clean every case with ``values[0]`` on the first stream (the routing pass), keep those
+    whose result ``keep`` accepts, then run each kept case with both values on every stream.
+
+    ``one((k, value, rng))`` cleans case ``k`` in a worker (see :func:`_start`).  Returns
+    the kept case indices and ``{(k, value, rng): result}``.  ``settings``: see :func:`_start`.
+    """
+    with Pool(max(1, workers), initializer=_start, initargs=(cases, settings)) as pool:
+        first = pool.map(one, [(k, values[0], rngs[0]) for k in range(len(cases))], chunksize=1)
+        ks = [k for k, r in enumerate(first) if keep(r)]
+        res = {(k, values[0], rngs[0]): first[k] for k in ks}  # the routing pass, reused
+        jobs = [(k, v, r) for k in ks for v in values for r in rngs if (k, v, r) not in res]
+        res.update(zip(jobs, pool.map(one, jobs, chunksize=1)))
+    return ks, res
+
+
+def mean_line(diffs):
+    """``"mean +x dB (s.e. y)"`` of paired PSNR differences."""
+    d = np.array(diffs)
+    se = d.std(ddof=1) / math.sqrt(len(d)) if len(d) > 1 else float("nan")
+    return f"mean {d.mean():+.4f} dB (s.e. {se:.4f})"
 
 
 def _one(job):
@@ -76,16 +109,14 @@ def main(argv=None) -> int:
     p.add_argument("--rng", type=int, nargs="+", default=[1, 2], help="random streams")
     p.add_argument("--margin", type=float, default=CURVATURE_MARGIN,
                    help=f"allowance to compare with none (default {CURVATURE_MARGIN:g})")
+    p.add_argument("--no-block-trial", action="store_true",
+                   help="turn off the block prior's trial after the smooth prior "
+                        "(grey.BLOCK_SWITCH = 0, as before stop 26, when stop 25 measured this)")
     p.add_argument("--workers", type=int, default=2)
     args = p.parse_args(argv)
     cases = load(args.set)
-    with Pool(max(1, args.workers), initializer=_start, initargs=(cases,)) as pool:
-        first = pool.map(_one, [(k, 0.0, args.rng[0]) for k in range(len(cases))], chunksize=1)
-        ks = [k for k, r in enumerate(first) if r[2] == "smooth"]
-        res = {(k, 0.0, args.rng[0]): first[k] for k in ks}  # the routing pass, reused
-        jobs = [(k, m, r) for k in ks for m in (0.0, args.margin) for r in args.rng
-                if (k, m, r) not in res]
-        res.update(zip(jobs, pool.map(_one, jobs, chunksize=1)))
+    ks, res = paired_runs(cases, _one, (0.0, args.margin), args.rng, lambda r: r[2] == "smooth",
+                          args.workers, {"BLOCK_SWITCH": 0.0} if args.no_block_trial else None)
     diffs, flips = [], []
     for k in ks:
         for r in args.rng:
@@ -95,13 +126,11 @@ def main(argv=None) -> int:
                 flips.append(p1 - p0)
                 print(f"{cases[k][0]:24s} rng {r}: curvature {k0:.3g} -> {k1:.3g}, "
                       f"{p0:.3f} -> {p1:.3f} dB ({p1 - p0:+.3f})")
-    d = np.array(diffs)
-    if not len(d):
+    if not diffs:
         print(f"{args.set}: no case gets the smooth prior")
         return 0
-    se = d.std(ddof=1) / math.sqrt(len(d)) if len(d) > 1 else float("nan")
     print(f"{args.set}: {len(ks)} smooth-prior cases x {len(args.rng)} streams, margin "
-          f"{args.margin:g} against 0: mean {d.mean():+.4f} dB (s.e. {se:.4f}); "
+          f"{args.margin:g} against 0: {mean_line(diffs)}; "
           f"{len(flips)} decisions flipped, {sum(f > 0 for f in flips)} gained, "
           f"{sum(f < 0 for f in flips)} lost")
     return 0
