@@ -406,8 +406,9 @@ def clean_grey(image, *, method="mean", noise="auto", sigma="auto", gain="auto",
         :data:`SMOOTH_PRIOR_GATE` times the usual one) and ``"smooth"`` for
         a smoother one; a smoother 2-D image that SURE gives no curvature
         term then takes ``"blocks"`` if SURE prefers it (one risk, see
-        :data:`BLOCK_SWITCH`, logged as ``sure_blocks``); ``prior`` is logged in ``estimated``; with a strength
-        or curvature set by hand it is ``"smooth"``.  The rule can pick
+        :data:`BLOCK_SWITCH`, logged as ``sure_blocks``); ``prior`` is
+        logged in ``estimated``; with a strength or curvature set by hand it
+        is ``"smooth"``.  The rule can pick
         wrong: on the Shepp-Logan phantom (flat regions, sharp edges) it picks
         the rough-image prior, below ``"smooth"`` by 1.1-2.3 dB
         (``scripts/heldout_grey.py``, 384^2 crop, with ``"textured"``; the
