@@ -70,7 +70,9 @@ class Settings:
         chosen by SURE, 0 when it does not help.
     prior : {"auto", "smooth", "textured", "blocks"}
         Grey: which shipped prior; ``"auto"`` picks one from the image's
-        roughness, or ``"smooth"`` when strength or curvature is set (see
+        roughness (then, for a smooth 2-D image, between ``"smooth"`` and
+        ``"blocks"`` by one SURE risk), or ``"smooth"`` when strength or
+        curvature is set (see
         :func:`mrfclean.grey.clean_grey`, which also takes a prior file).
     schedule, t_start, t_end
         Annealing schedule for MAP.

@@ -199,7 +199,7 @@ CURVATURE_MARGIN = 1e-3
 #: block prior at 2x gained on all 24 (+0.44 to +1.11 dB) and SURE took it on 20 (all
 #: gains); held-out images, where six of eight took the term, it took it on the other
 #: two (+0.41, +0.14 dB); the benchmark (evidence only) +0.018 dB, moon +0.16 to
-#: +0.34, cell at sigma 0.1-0.2 at 256^2 -0.39 and -0.17.  Time: the same within 0.2%
+#: +0.34, cell at sigma 0.1-0.2 at 256^2 -0.39 and -0.17.  Time: the same within 0.3%
 #: on seven 512^2 cell and moon cleans (the switched cases' chains are cheaper).
 #: 0 turns the trial off.
 BLOCK_SWITCH = 2.0

@@ -14,7 +14,8 @@ tuning cases of scripts/learn_grey_prior.py at 384^2 with seed N); never the
 benchmark's images.  Runs go in parallel, one kernel thread per worker.
 
 Since stop 26 a case the term leaves out may switch to the block prior
-(``grey.BLOCK_SWITCH``), so fewer cases stay on the smooth prior;
+(``grey.BLOCK_SWITCH``); the cases run are those "auto" sends to the smooth
+prior first, and a flip line names the prior each run ended on.
 ``--no-block-trial`` measures as stop 25 did.
 
 Example
@@ -90,7 +91,9 @@ def mean_line(diffs):
 
 
 def _one(job):
-    """``(PSNR, curvature, prior family)`` of one case cleaned with one allowance and rng."""
+    """``(PSNR, curvature, prior family, smooth-routed)`` of one case cleaned with one
+    allowance and rng; smooth-routed: "auto" gave it the smooth prior first (it may have
+    ended on the block prior by the block trial, ``grey.BLOCK_SWITCH``)."""
     import mrfclean.grey as grey
     from mrfclean.metrics import psnr
 
@@ -98,7 +101,9 @@ def _one(job):
     grey.CURVATURE_MARGIN = margin
     _, x, y = _CASES[k]
     r = grey.clean_grey(y, rng=rng)
-    return psnr(x, r.mean, data_range=1.0), r.params.get("curvature", 0.0), r.params["prior_family"]
+    routed = r.params["prior_family"] == "smooth" or "sure_blocks" in r.params
+    return (psnr(x, r.mean, data_range=1.0), r.params.get("curvature", 0.0),
+            r.params["prior_family"], routed)
 
 
 def main(argv=None) -> int:
@@ -115,16 +120,16 @@ def main(argv=None) -> int:
     p.add_argument("--workers", type=int, default=2)
     args = p.parse_args(argv)
     cases = load(args.set)
-    ks, res = paired_runs(cases, _one, (0.0, args.margin), args.rng, lambda r: r[2] == "smooth",
+    ks, res = paired_runs(cases, _one, (0.0, args.margin), args.rng, lambda r: r[3],
                           args.workers, {"BLOCK_SWITCH": 0.0} if args.no_block_trial else None)
     diffs, flips = [], []
     for k in ks:
         for r in args.rng:
-            (p0, k0, _), (p1, k1, _) = res[k, 0.0, r], res[k, args.margin, r]
+            (p0, k0, f0, _), (p1, k1, f1, _) = res[k, 0.0, r], res[k, args.margin, r]
             diffs.append(p1 - p0)
-            if k0 != k1:
+            if k0 != k1 or f0 != f1:
                 flips.append(p1 - p0)
-                print(f"{cases[k][0]:24s} rng {r}: curvature {k0:.3g} -> {k1:.3g}, "
+                print(f"{cases[k][0]:24s} rng {r}: curvature {k0:.3g} ({f0}) -> {k1:.3g} ({f1}), "
                       f"{p0:.3f} -> {p1:.3f} dB ({p1 - p0:+.3f})")
     if not diffs:
         print(f"{args.set}: no case gets the smooth prior")
