@@ -1699,7 +1699,24 @@ def sgs_weights(w, curv, cs, out):
     """The weights ``-Q[p, p + o]`` of :func:`_sgs_apply`: the cliques' ``w[:4]``
     (:func:`_is_grid8`'s layout) plus, with ``curv > 0``, the second-difference
     triples' entries between row and column neighbours (``2 curv`` for each
-    triple that holds both pixels, times ``cs`` at its middle when given)."""
+    triple that holds both pixels, times ``cs`` at its middle when given).
+
+    Parameters
+    ----------
+    w : ndarray, shape (4, Z, H, W)
+        Clique weights of the in-plane 8-neighbourhood.
+    curv : float
+        Weight of the second-difference term (0: a copy of ``w``).
+    cs : ndarray, shape (Z, H, W) or (0, 0, 0)
+        The triples' factors at their middle pixels, or empty for none.
+    out : ndarray, shape (4, Z, H, W)
+        Receives the weights.
+
+    References
+    ----------
+    .. [1] Y. Saad, Iterative Methods for Sparse Linear Systems, 2nd ed., SIAM
+       (2003), section 10.2 (SSOR preconditioning; from memory).
+    """
     Z, H, W = out.shape[1:]
     scaled = cs.shape[0] > 0
     for k in prange(Z * H):
@@ -2087,11 +2104,11 @@ def _sgs_apply(pw, minv, Rr, Zr, on, rows):
     """``z = M^-1 r`` for the symmetric Gauss-Seidel preconditioner
     ``M = (D - L) D^-1 (D - L^T)`` of the 8-neighbourhood in four colours; row sums of r z.
 
-    ``D`` is the whole diagonal of ``Q`` (``1 / minv``) and ``L`` the entries
-    of ``Q`` between each pixel and its 8 neighbours of lower colour, colour
-    ``2 (i mod 2) + (j mod 2)`` at row ``i``, column ``j``, as weights ``pw``
-    in :func:`_is_grid8`'s layout (``Q[p, p + o] = -pw[o, p]``, see
-    :func:`sgs_weights`).  The curvature triples' entries two pixels apart
+    ``D`` is the whole diagonal of ``Q`` (``1 / minv``) and ``L`` minus the
+    entries of ``Q`` between each pixel and its 8 neighbours of lower colour
+    (colour ``2 (i mod 2) + (j mod 2)`` at row ``i``, column ``j``): the
+    weights ``pw`` in :func:`_is_grid8`'s layout, ``Q[p, p + o] = -pw[o, p]``
+    (see :func:`sgs_weights`).  The curvature triples' entries two pixels apart
     join pixels of one colour; the sweep leaves them to the conjugate
     gradients.  ``M`` is symmetric positive definite for any positive
     diagonal, so it is a valid preconditioner whatever the weights.
@@ -2110,7 +2127,7 @@ def _sgs_apply(pw, minv, Rr, Zr, on, rows):
     ----------
     .. [1] Y. Saad, Iterative Methods for Sparse Linear Systems, 2nd ed., SIAM
        (2003), sections 10.2 (SSOR preconditioning) and 12.4 (multicolour
-       orderings).
+       orderings; section numbers from memory).
     """
     S, Z, H, W = Rr.shape
     dt = Rr.dtype
@@ -2182,6 +2199,15 @@ def gmrf_cg(X, B, w, offsets, dw, curv, cs, minv, tols, max_iter, Rr, P, Q, Zr, 
     weights (:func:`sgs_weights`) of a four-colour symmetric Gauss-Seidel
     sweep (:func:`_sgs_apply`), which needs about half the iterations at
     about 1.3 times the time of one.
+
+    References
+    ----------
+    .. [1] M. R. Hestenes & E. Stiefel, "Methods of conjugate gradients for
+       solving linear systems", J. Res. Natl. Bur. Stand. 49 (1952) 409-436 (volume
+       and pages from memory).
+    .. [2] Y. Saad, Iterative Methods for Sparse Linear Systems, 2nd ed., SIAM
+       (2003), sections 9.2 (preconditioned conjugate gradients), 10.2 and 12.4
+       (section numbers from memory).
     """
     S, Z, H, W = X.shape
     nr = Z * H

@@ -57,7 +57,9 @@ given the image the scales are independent categorical draws.  This is the
 auxiliary-variable Gibbs sampler of Schmidt, Gao & Roth (2010).  The image
 block is drawn exactly by perturbation-optimisation (Papandreou & Yuille 2010):
 ``x = Q^{-1}(V^{-1} y + sqrt(T) eta)`` with ``eta ~ N(0, Q)``, solved by
-conjugate gradients preconditioned with the diagonal of ``Q``.
+conjugate gradients preconditioned with a four-colour symmetric Gauss-Seidel
+sweep of ``Q`` (in-plane 8-neighbourhoods, every shipped 2-D prior; Saad 2003)
+or with its diagonal (volumes).
 
 Noise terms give the per-pixel variance ``v``: :class:`GaussianNoise` (a
 constant ``sigma^2``) and :class:`PoissonGaussianNoise` (``a x + b``, evaluated
@@ -627,8 +629,9 @@ class GreyModel(ChainModel):
     components (1 byte), plus fourteen solver-word images (two
     conjugate-gradient systems of five vectors, two right-hand sides, the
     diagonal and its inverse; two more for the triple normals when the
-    curvature term is on, and one for the triples' factors when the prior is
-    noise-stabilised) and the float64 data, chain states and tallies (plus
+    curvature term is on, four more for the Gauss-Seidel sweep's weights when
+    the curvature term is on with an 8-neighbourhood prior, and one for the
+    triples' factors when the prior is noise-stabilised) and the float64 data, chain states and tallies (plus
     the float64 factor image of a noise-stabilised prior).  A prior with block
     filters counts four pair offsets in ``n`` for the blocks' pair weights
     (three components per pixel) and adds six solver-word images: the three
@@ -642,6 +645,9 @@ class GreyModel(ChainModel):
     .. [2] R. M. Neal, "Suppressing random walks in Markov chain Monte Carlo
        using ordered overrelaxation", in Learning in Graphical Models (1998)
        205-228.
+    .. [3] Y. Saad, Iterative Methods for Sparse Linear Systems, 2nd ed., SIAM
+       (2003), sections 10.2 (SSOR preconditioning) and 12.4 (multicolour
+       orderings; section numbers from memory).
 
     Examples
     --------
@@ -722,8 +728,9 @@ class GreyModel(ChainModel):
         self._buf = {k: np.zeros((2, *shape), ft) for k in ("x", "r", "p", "q", "z")}
         self._diag = np.zeros(shape, ft)
         self._minv = np.zeros(shape, ft)
-        #: the preconditioner's weights (kernels.sgs_weights): the clique weights themselves
-        #: without the curvature term; None for Jacobi
+        #: the Gauss-Seidel sweep's weights (kernels.sgs_weights): the clique weights
+        #: themselves without the curvature term, with it the clique weights plus the
+        #: triples' entries between neighbours (refilled by _set_operator); None for Jacobi
         self._pw = None
         if preconditioner == "sgs" and kernels.is_grid8(self.op_offsets):
             self._pw = self.w if self.curv == 0 else np.zeros((4, *shape), ft)
