@@ -368,7 +368,26 @@ def run_report(args) -> int:
 
 
 def main(argv=None) -> int:
-    """Entry point of the ``mrfclean`` command; returns the exit status."""
+    """Entry point of the ``mrfclean`` command; returns the exit status.
+
+    When whatever reads the standard output goes away before the summary is
+    printed (``mrfclean clean ... | head -1``), the results are already written;
+    the command then stops quietly with status 1, as the Python documentation's
+    note on SIGPIPE (module ``signal``) recommends, instead of a traceback.
+    """
+    try:
+        status = _main(argv)
+        sys.stdout.flush()  # a reader that went away shows here, not at exit
+        return status
+    except BrokenPipeError:
+        import os
+
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())  # so the exit's flush of stdout stays quiet
+        return EXIT_FAILED
+
+
+def _main(argv):
     parser = build_parser()
     args = parser.parse_args(argv)
     if args.command is None:

@@ -6,6 +6,9 @@ ships as a generator, plus seeded flips) or are malformed files made on purpose.
 
 from __future__ import annotations
 
+import os
+import sys
+
 import numpy as np
 import pytest
 import tifffile
@@ -234,3 +237,44 @@ def test_a_failed_map_write_leaves_no_result_behind(noisy_png, tmp_path, monkeyp
     rc = main(["clean", str(noisy_png), "-o", str(tmp_path / "out"), "--maps", "-j", "1", *FAST])
     assert rc != 0
     assert not (tmp_path / "out" / "blobs.png").exists()
+
+
+
+class _ReaderGoneAfterOneLine:
+    """Standard output whose reader goes away after the first printed line (``| head -1``):
+    later writes fail as a closed pipe does."""
+
+    def __init__(self):
+        self.read_end, self.write_end = os.pipe()
+        self.text = ""
+
+    def write(self, text):
+        if "\n" in self.text:
+            raise BrokenPipeError(32, "Broken pipe")
+        self.text += text
+        return len(text)
+
+    def flush(self):
+        pass
+
+    def fileno(self):
+        return self.write_end
+
+
+def test_summary_into_a_closed_pipe_ends_quietly(noisy_png, tmp_path, monkeypatch, capsys):
+    """``mrfclean clean ... | head -1``: the reader has gone when the summary is printed
+    (after the file's own line).  The cleaned image is written, the exit status is 1 and
+    nothing is raised (the remedy of the Python documentation's note on SIGPIPE, module
+    ``signal``)."""
+    out = tmp_path / "out"
+    stdout = _ReaderGoneAfterOneLine()
+    monkeypatch.setattr(sys, "stdout", stdout)
+    try:
+        status = main(["clean", str(noisy_png), "-o", str(out), *FAST])
+    finally:
+        os.close(stdout.read_end)
+        os.close(stdout.write_end)
+    assert status == 1
+    assert stdout.text.count("\n") == 1 and "->" in stdout.text
+    assert "Traceback" not in capsys.readouterr().err
+    assert (out / "blobs.png").exists()
