@@ -708,7 +708,6 @@ class GreyModel(ChainModel):
         self.closing_mean = bool(closing_mean)
         if preconditioner not in ("sgs", "jacobi"):
             raise ValueError(f"preconditioner must be 'sgs' or 'jacobi', got {preconditioner!r}")
-        self.preconditioner = preconditioner
         self.starts = [np.asarray(s, dtype=np.float64).reshape(self.grid.shape)
                        for s in (starts if starts is not None else [self.y])]
         n = len(self.op_offsets)
